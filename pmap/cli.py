@@ -1,0 +1,133 @@
+"""The ``pmap`` command line: parse, build a config, call the library, map errors to exit codes.
+
+Exit codes: 0 success, 1 unexpected failure, 2 bad command line or configuration,
+3 bad input data, 4 output directory exists, 5 a model could not be fitted.
+"""
+
+from __future__ import annotations
+
+import logging
+import sys
+import warnings
+from pathlib import Path
+
+import click
+
+from pmap._version import __version__
+from pmap.cautions import CAUTIONS_SHORT
+from pmap.errors import ConfigError, InputError, ModelFitError, OutputExistsError, PmapError
+
+__all__ = ["main", "cli"]
+
+_EXIT_CODES = ((ConfigError, 2), (InputError, 3), (OutputExistsError, 4), (ModelFitError, 5))
+
+
+def _setup_logging(verbose: int, quiet: bool) -> None:
+    level = logging.WARNING if quiet else (logging.DEBUG if verbose > 1 else logging.INFO)
+    handler = logging.StreamHandler(sys.stderr)
+    handler.setFormatter(logging.Formatter("pmap: %(message)s"))
+    root = logging.getLogger("pmap")
+    root.handlers[:] = [handler]
+    root.setLevel(level)
+
+    def show(message, category, filename, lineno, file=None, line=None):  # noqa: ARG001
+        if not quiet:
+            click.echo(f"pmap: warning: {message}", err=True)
+
+    warnings.showwarning = show
+
+
+def _report(result, out: Path) -> None:
+    totals = result.totals
+    click.echo(f"wrote {len(result.outputs)} outputs to {out}")
+    click.echo(
+        f"  field area {totals['area_ha']:.2f} ha, {len(result.patches)} rate-zone polygons, "
+        f"{totals['p2o5_total_kg']:.0f} kg P2O5 = {totals['product_total_kg']:.0f} kg "
+        f"{totals['product']} in total"
+    )
+    click.echo(f"  rates driven by: {result.stp_source['description']}")
+    for name, interp in result.interpolations.items():
+        cv = interp.cv
+        click.echo(
+            f"  {name:<15} {interp.model.kind:<11} cross-validation RMSE {cv.rmse:.3g}, "
+            f"mean error {cv.mean_error:+.2g}, MSDR {cv.msdr:.2f}"
+        )
+    click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
+
+
+def _run_safely(func, *args, **kwargs):
+    try:
+        return func(*args, **kwargs)
+    except PmapError as exc:
+        code = next((c for cls, c in _EXIT_CODES if isinstance(exc, cls)), 1)
+        message = " ".join(str(exc).split())
+        click.echo(f"pmap: error: {message}", err=True)
+        sys.exit(code)
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(__version__, prog_name="pmap (soil phosphorus maps)",
+                      message="%(prog)s %(version)s")
+@click.option("-v", "--verbose", count=True, help="More progress messages (-vv for debugging).")
+@click.option("-q", "--quiet", is_flag=True, help="Only errors.")
+def cli(verbose: int, quiet: bool) -> None:
+    """pmap: soil samples to phosphorus availability, fixation-risk, zone and P2O5 rate maps.
+
+    Outputs are estimates for review: check rates against local regulations and
+    nutrient-management rules, and have them signed off by a certified agronomist.
+    """
+    _setup_logging(verbose, quiet)
+
+
+@cli.command()
+@click.argument("out", type=click.Path(path_type=Path, file_okay=False))
+@click.option("--overwrite", is_flag=True, help="Replace OUT if it exists and is not empty.")
+def demo(out: Path, overwrite: bool) -> None:
+    """Run the whole job on the bundled invented demo field and write the outputs into OUT."""
+    from pmap.demo import run_demo
+
+    result = _run_safely(run_demo, out, overwrite=overwrite)
+    _report(result, out)
+
+
+@cli.command()
+@click.argument("samples", type=click.Path(path_type=Path, dir_okay=False))
+@click.option("--boundary", "-b", required=True, type=click.Path(path_type=Path, dir_okay=False),
+              help="Field boundary: GeoJSON, GeoPackage or Shapefile.")
+@click.option("--out", "-o", required=True, type=click.Path(path_type=Path, file_okay=False),
+              help="Output directory (refused if it exists and is not empty).")
+@click.option("--config", "-c", "config_path", type=click.Path(path_type=Path, dir_okay=False),
+              help="Field configuration TOML (see docs/configuration.md).")
+@click.option("--crs", help="CRS of projected x/y sample columns, e.g. EPSG:32616 (sets grid.crs).")
+@click.option("--cell-size", type=float, help="Output cell size in metres (sets grid.cell_size_m).")
+@click.option("--overwrite", is_flag=True, help="Replace OUT if it exists and is not empty.")
+def run(samples: Path, boundary: Path, out: Path, config_path: Path | None, crs: str | None,
+        cell_size: float | None, overwrite: bool) -> None:
+    """Map one field: SAMPLES (CSV, GeoJSON, GeoPackage or Shapefile) inside --boundary."""
+    from pmap.config import load_config
+    from pmap.pipeline import run_field
+
+    config = _run_safely(load_config, config_path)
+    changes = {}
+    if crs:
+        changes["crs"] = crs
+    if cell_size is not None:
+        changes["cell_size_m"] = cell_size
+    if changes:
+        config = _run_safely(config.replace, "grid", **changes)
+    result = _run_safely(run_field, samples, boundary, out, config, overwrite=overwrite,
+                         config_path=config_path)
+    _report(result, out)
+
+
+@cli.command("config")
+def config_reference() -> None:
+    """Print every configuration key with its unit, default and source (Markdown)."""
+    from pmap.config import configuration_reference
+
+    click.echo(configuration_reference())
+
+
+def main() -> None:
+    """Entry point of the ``pmap`` console script and ``python -m pmap``."""
+    cli(prog_name="pmap")

@@ -1,0 +1,260 @@
+"""The per-field configuration: one frozen dataclass per TOML section.
+
+Each section's dataclass lives beside the numerics it steers (``[kriging]`` in
+:mod:`pmap.geostats.interpolate`, ``[rates]`` in :mod:`pmap.prescribe.rates`, ...); this
+module only gathers them, reads TOML into them and documents them.  Every field carries
+``metadata`` with its unit, meaning and source, from which
+:func:`configuration_reference` writes ``docs/configuration.md``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import difflib
+import sys
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from pmap.errors import ConfigError
+from pmap.geostats.interpolate import KrigingSettings
+from pmap.io.samples import SampleColumns
+from pmap.prescribe.rates import RateRule
+from pmap.prescribe.zones import ZoneParams
+from pmap.soil.availability import PartitionParams
+from pmap.soil.conversions import SoilTestEquivalent
+from pmap.soil.fixation import FixationParams
+
+if sys.version_info >= (3, 11):
+    import tomllib
+else:  # pragma: no cover - exercised on Python 3.10 only
+    import tomli as tomllib
+
+__all__ = ["FieldInfo", "GridSettings", "FieldConfig", "load_config", "configuration_reference"]
+
+
+@dataclass(frozen=True)
+class FieldInfo:
+    """Names and dates shown on maps and in the summary."""
+
+    name: str = field(default="field", metadata={"unit": "", "doc": "field name used in titles and the summary"})
+    farm: str = field(default="", metadata={"unit": "", "doc": "farm or client name"})
+    sampling_date: str = field(default="", metadata={"unit": "YYYY-MM-DD", "doc": "date the samples were taken"})
+    sampling_depth_cm: str = field(default="0-15", metadata={"unit": "cm", "doc": "sampling depth interval, for the record"})
+
+
+@dataclass(frozen=True)
+class GridSettings:
+    """The output grid and the run's coordinate reference system."""
+
+    cell_size_m: float = field(
+        default=5.0,
+        metadata={"unit": "m", "doc": "edge length of an output cell", "source": "common practice, no source"},
+    )
+    crs: str | None = field(
+        default=None,
+        metadata={
+            "unit": "",
+            "doc": "CRS of projected x/y sample columns and of the run (e.g. EPSG:32616); "
+            "unset: samples must be lat/lon or carry a CRS, and the run uses the field's UTM zone",
+        },
+    )
+    sample_buffer_m: float = field(
+        default=10.0,
+        metadata={"unit": "m", "doc": "samples up to this far outside the boundary are kept (GPS error)"},
+    )
+
+    def __post_init__(self) -> None:
+        if not self.cell_size_m > 0:
+            raise ConfigError(f"grid.cell_size_m must be > 0 m, got {self.cell_size_m}")
+        if self.cell_size_m > 100:
+            raise ConfigError(f"grid.cell_size_m = {self.cell_size_m} m is too coarse for a field map; use 1-50 m")
+        if self.sample_buffer_m < 0:
+            raise ConfigError(f"grid.sample_buffer_m must be >= 0 m, got {self.sample_buffer_m}")
+
+
+@dataclass(frozen=True)
+class FieldConfig:
+    """Everything that steers one field's run; each attribute is one TOML section."""
+
+    field: FieldInfo = dataclasses.field(default_factory=FieldInfo)
+    grid: GridSettings = dataclasses.field(default_factory=GridSettings)
+    samples: SampleColumns = dataclasses.field(default_factory=SampleColumns)
+    kriging: KrigingSettings = dataclasses.field(default_factory=KrigingSettings)
+    soil: PartitionParams = dataclasses.field(default_factory=PartitionParams)
+    fixation: FixationParams = dataclasses.field(default_factory=FixationParams)
+    soil_test_equivalent: SoilTestEquivalent = dataclasses.field(default_factory=SoilTestEquivalent)
+    rates: RateRule = dataclasses.field(default_factory=RateRule)
+    zones: ZoneParams = dataclasses.field(default_factory=ZoneParams)
+
+    def replace(self, section: str, **changes: Any) -> FieldConfig:
+        """A copy with some keys of one section changed (``cfg.replace("grid", crs="EPSG:32616")``)."""
+        current = getattr(self, section)
+        return dataclasses.replace(self, **{section: dataclasses.replace(current, **changes)})
+
+    def as_dict(self) -> dict[str, dict[str, Any]]:
+        """The whole configuration as plain JSON-able values."""
+        return {f.name: _section_as_dict(getattr(self, f.name)) for f in dataclasses.fields(self)}
+
+
+def _section_as_dict(obj: Any) -> dict[str, Any]:
+    out = {}
+    for f in dataclasses.fields(obj):
+        value = getattr(obj, f.name)
+        out[f.name] = list(value) if isinstance(value, tuple) else value
+    return out
+
+
+def load_config(path: str | Path | None = None) -> FieldConfig:
+    """Read a field configuration from a TOML file; ``None`` gives the defaults.
+
+    Raises
+    ------
+    ConfigError
+        The file is missing or not TOML, a section or key is unknown, or a value has the
+        wrong type or is out of range.  The message names the file and the key.
+    """
+    if path is None:
+        return FieldConfig()
+    path = Path(path)
+    if not path.is_file():
+        raise ConfigError(f"config file not found: {path}")
+    try:
+        data = tomllib.loads(path.read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"{path}: not valid TOML ({exc})") from exc
+    return config_from_dict(data, source=str(path))
+
+
+def config_from_dict(data: dict[str, Any], source: str = "config") -> FieldConfig:
+    """Build a :class:`FieldConfig` from nested dicts as read from TOML."""
+    sections = {f.name: f for f in dataclasses.fields(FieldConfig)}
+    built: dict[str, Any] = {}
+    for name, values in data.items():
+        if name not in sections:
+            raise ConfigError(f"{source}: unknown section [{name}]{_did_you_mean(name, sections)}")
+        if not isinstance(values, dict):
+            raise ConfigError(f"{source}: [{name}] must be a table of keys, got {values!r}")
+        cls = _section_class(sections[name])
+        built[name] = _build_section(cls, name, values, source)
+    return FieldConfig(**built)
+
+
+def _section_class(f: dataclasses.Field) -> type:
+    return f.default_factory  # type: ignore[return-value]
+
+
+def _build_section(cls: type, section: str, values: dict[str, Any], source: str) -> Any:
+    hints = typing.get_type_hints(cls)
+    known = {f.name for f in dataclasses.fields(cls)}
+    kwargs = {}
+    for key, value in values.items():
+        if key not in known:
+            raise ConfigError(f"{source}: unknown key {section}.{key}{_did_you_mean(key, known)}")
+        kwargs[key] = _coerce(value, hints[key], f"{section}.{key}", source)
+    try:
+        return cls(**kwargs)
+    except ConfigError as exc:
+        raise ConfigError(f"{source}: {exc}") from exc
+    except (TypeError, ValueError) as exc:
+        raise ConfigError(f"{source}: [{section}] {exc}") from exc
+
+
+def _coerce(value: Any, hint: Any, key: str, source: str) -> Any:
+    """Check a TOML value against a field's type hint, converting lists to tuples."""
+    origin = typing.get_origin(hint)
+    args = typing.get_args(hint)
+    if origin in (typing.Union, types.UnionType):
+        if value is None and type(None) in args:
+            return None
+        errors = []
+        for arg in args:
+            if arg is type(None):
+                continue
+            try:
+                return _coerce(value, arg, key, source)
+            except ConfigError as exc:
+                errors.append(str(exc))
+        raise ConfigError(errors[0] if errors else f"{source}: {key} has an unsupported value {value!r}")
+    if origin is tuple:
+        if not isinstance(value, (list, tuple)):
+            raise ConfigError(f"{source}: {key} must be a list, got {value!r}")
+        item = args[0] if args else Any
+        return tuple(_coerce(v, item, key, source) for v in value)
+    if origin is dict:
+        if not isinstance(value, dict):
+            raise ConfigError(f"{source}: {key} must be a table, got {value!r}")
+        return dict(value)
+    if hint is float:
+        if isinstance(value, bool) or not isinstance(value, (int, float)):
+            raise ConfigError(f"{source}: {key} must be a number, got {value!r}")
+        return float(value)
+    if hint is int:
+        if isinstance(value, bool) or not isinstance(value, int):
+            raise ConfigError(f"{source}: {key} must be a whole number, got {value!r}")
+        return value
+    if hint is bool:
+        if not isinstance(value, bool):
+            raise ConfigError(f"{source}: {key} must be true or false, got {value!r}")
+        return value
+    if hint is str:
+        if not isinstance(value, str):
+            raise ConfigError(f"{source}: {key} must be a string, got {value!r}")
+        return value
+    return value
+
+
+def _did_you_mean(name: str, options: typing.Iterable[str]) -> str:
+    close = difflib.get_close_matches(name, list(options), n=1)
+    return f" (did you mean '{close[0]}'?)" if close else f"; known: {', '.join(sorted(options))}"
+
+
+_TYPE_NAMES = {float: "number", int: "integer", str: "string", bool: "true/false"}
+
+
+def _type_name(hint: Any) -> str:
+    """A reader's name for a field's type hint ("number", "list of string", ...)."""
+    origin, args = typing.get_origin(hint), typing.get_args(hint)
+    if origin in (typing.Union, types.UnionType):
+        names = [_type_name(a) for a in args if a is not type(None)]
+        optional = " (optional)" if type(None) in args else ""
+        return " or ".join(names) + optional
+    if origin is tuple:
+        return f"list of {_type_name(args[0])}" if args else "list"
+    if origin is dict:
+        return "table"
+    return _TYPE_NAMES.get(hint, str(hint).replace("typing.", ""))
+
+
+def configuration_reference() -> str:
+    """Markdown reference of every section and key, with unit, default and source."""
+    lines = [
+        "# Configuration reference",
+        "",
+        "A field's run is steered by a TOML file (`pmap run ... --config FIELD.toml`). Every key is",
+        "optional; a missing key takes the default below. Unknown sections or keys are errors.",
+        "This page is generated from the code by `python -m pmap.config` and checked by a test.",
+        "",
+    ]
+    for sect in dataclasses.fields(FieldConfig):
+        cls = _section_class(sect)
+        doc = (cls.__doc__ or "").strip().splitlines()[0].replace("``", "`")
+        lines += [f"## [{sect.name}]", "", doc, "", "| key | type | default | unit | meaning | source |",
+                  "| --- | --- | --- | --- | --- | --- |"]
+        hints = typing.get_type_hints(cls)
+        defaults = cls()
+        for f in dataclasses.fields(cls):
+            meta = f.metadata
+            default = getattr(defaults, f.name)
+            shown = "unset" if default is None else repr(list(default) if isinstance(default, tuple) else default)
+            row = [f"`{f.name}`", _type_name(hints[f.name]), f"`{shown}`", meta.get("unit", ""),
+                   meta.get("doc", ""), meta.get("source", "")]
+            lines.append("| " + " | ".join(str(c).replace("|", "/") for c in row) + " |")
+        lines.append("")
+    return "\n".join(lines)
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.stdout.write(configuration_reference() + "\n")

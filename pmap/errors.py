@@ -1,0 +1,46 @@
+"""Exceptions and warnings raised by pmap.
+
+Every error pmap raises on purpose derives from :class:`PmapError` and from the
+built-in exception it resembles, so callers may catch either.  Messages name the
+file, row, column or key at fault and say what to do about it.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "PmapError",
+    "InputError",
+    "ConfigError",
+    "InsufficientDataError",
+    "ModelFitError",
+    "OutputExistsError",
+    "PmapWarning",
+]
+
+
+class PmapError(Exception):
+    """Root of every error pmap raises on purpose."""
+
+
+class InputError(PmapError, ValueError):
+    """A samples or boundary file is missing, unreadable or holds bad values."""
+
+
+class ConfigError(PmapError, ValueError):
+    """A configuration file or option is invalid."""
+
+
+class InsufficientDataError(InputError):
+    """Too few usable samples for an honest estimate."""
+
+
+class ModelFitError(PmapError, RuntimeError):
+    """A variogram or kriging system could not be fitted or solved."""
+
+
+class OutputExistsError(PmapError, FileExistsError):
+    """The output directory exists and is not empty, and overwriting was not asked for."""
+
+
+class PmapWarning(UserWarning):
+    """Something pmap did on the user's behalf that they should know about."""

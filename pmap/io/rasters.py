@@ -1,0 +1,206 @@
+"""GeoTIFF output in Cloud-Optimized layout, and reading it back.
+
+:func:`write_cog` writes a GTiff in memory with band description, unit, tags and (for
+class rasters) a colour table, then copies it with GDAL's COG driver to a temporary file
+beside the target and renames it into place, so a reader never sees half a file.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+from affine import Affine
+
+from pmap.grid import NODATA, GridSpec
+from pmap.io.crs import normalise_crs
+
+__all__ = ["CLASS_NODATA", "class_colours", "write_cog", "RasterInfo", "read_raster", "pmap_version"]
+
+#: Value written for cells outside the field in class (uint8) rasters.
+CLASS_NODATA: int = 0
+
+
+def pmap_version() -> str:
+    """The installed pmap version, or the package's ``__version__`` when not installed."""
+    from importlib import metadata
+
+    try:
+        return metadata.version("pmap")
+    except metadata.PackageNotFoundError:
+        import pmap
+
+        return str(getattr(pmap, "__version__", "0+source"))
+
+
+def class_colours(class_ids: list[int] | tuple[int, ...]) -> dict[int, tuple[int, int, int, int]]:
+    """Ordered, colour-blind-safe RGBA colours for class ids (low id = dark, high id = light).
+
+    Samples matplotlib's viridis colour map evenly between 0.1 and 0.9, so maps and the
+    GeoTIFF colour table agree.
+    """
+    from matplotlib import colormaps
+
+    ids = sorted(int(c) for c in class_ids)
+    cmap = colormaps["viridis"]
+    pos = np.linspace(0.1, 0.9, len(ids)) if len(ids) > 1 else np.array([0.5])
+    out = {}
+    for cid, p in zip(ids, pos, strict=True):
+        r, g, b, _ = cmap(float(p))
+        out[cid] = (round(r * 255), round(g * 255), round(b * 255), 255)
+    return out
+
+
+def write_cog(
+    path: str | Path,
+    array: np.ndarray,
+    grid: GridSpec,
+    *,
+    description: str,
+    unit: str,
+    tags: Mapping[str, str] | None = None,
+    class_labels: Mapping[int, str] | None = None,
+    colormap: Mapping[int, tuple[int, int, int, int]] | None = None,
+) -> Path:
+    """Write one band as a Cloud-Optimized GeoTIFF.
+
+    Parameters
+    ----------
+    path : str or Path
+        Target file; replaced atomically if it exists (the caller decides whether it may).
+    array : numpy.ndarray, shape grid.shape
+        Float values (written float32, NaN and cells outside ``grid.mask`` -> :data:`NODATA`)
+        or integer classes 0-255 (written uint8, 0 and cells outside -> nodata 0).
+    grid : GridSpec
+        CRS, transform and field mask.
+    description, unit : str
+        Band description and unit (e.g. ``"mg/kg"``).
+    tags : mapping, optional
+        Provenance tags (method, variogram, n, ...); ``PMAP_VERSION`` is added.
+    class_labels : mapping of int to str, optional
+        For class rasters: written as tags ``CLASS_<id>=<label>``.
+    colormap : mapping of int to RGBA, optional
+        For class rasters: the colour table; default :func:`class_colours` of the labelled
+        (or present) classes.
+
+    Returns
+    -------
+    Path
+        The written file.
+    """
+    import rasterio
+    import rasterio.shutil
+    from rasterio.io import MemoryFile
+
+    path = Path(path)
+    array = np.asarray(array)
+    if array.shape != grid.shape:
+        raise ValueError(f"array shape {array.shape} does not match grid {grid.shape}")
+    is_class = array.dtype.kind in "uib"
+    if is_class:
+        if array.size and (array.min() < 0 or array.max() > 255):
+            raise ValueError("class rasters hold integers 0-255")
+        data = np.where(grid.mask, array, CLASS_NODATA).astype(np.uint8)
+        dtype, nodata, resampling = "uint8", CLASS_NODATA, "NEAREST"
+    else:
+        data = np.asarray(array, dtype=np.float32)
+        data = np.where(grid.mask & np.isfinite(data), data, np.float32(NODATA)).astype(np.float32)
+        dtype, nodata, resampling = "float32", NODATA, "AVERAGE"
+    all_tags = {str(k): str(v) for k, v in (tags or {}).items()}
+    all_tags["PMAP_VERSION"] = pmap_version()
+    if is_class:
+        for cid, label in (class_labels or {}).items():
+            all_tags[f"CLASS_{int(cid)}"] = str(label)
+        if colormap is None:
+            present = set(class_labels or {}) | {int(v) for v in np.unique(data) if v != 0}
+            colormap = class_colours(sorted(present)) if present else None
+    profile = {
+        "driver": "GTiff", "width": grid.width, "height": grid.height, "count": 1,
+        "dtype": dtype, "crs": rasterio.crs.CRS.from_user_input(normalise_crs(grid.crs)),
+        "transform": grid.transform, "nodata": nodata,
+    }
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp.tif", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp_name)
+    try:
+        with MemoryFile() as memfile:
+            with memfile.open(**profile) as dst:
+                dst.write(data, 1)
+                dst.set_band_description(1, description)
+                dst.set_band_unit(1, unit)
+                dst.update_tags(**all_tags)
+                if is_class and colormap:
+                    dst.write_colormap(1, {int(k): tuple(int(c) for c in v) for k, v in colormap.items()})
+            with memfile.open() as src:
+                options = {"COMPRESS": "DEFLATE", "BLOCKSIZE": 256, "OVERVIEW_RESAMPLING": resampling}
+                if not is_class:
+                    options["PREDICTOR"] = "YES"
+                rasterio.shutil.copy(src, tmp, driver="COG", **options)
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path
+
+
+@dataclass(frozen=True, eq=False)
+class RasterInfo:
+    """What a GeoTIFF says about itself (see :func:`read_raster`)."""
+
+    crs: str
+    transform: Affine
+    width: int
+    height: int
+    dtype: str
+    nodata: float | None
+    description: str | None
+    unit: str | None
+    driver: str
+    layout: str | None
+    overviews: tuple[int, ...]
+    colormap: dict[int, tuple[int, int, int, int]] | None
+    band_tags: dict[str, str] = field(default_factory=dict)
+
+    def grid(self, valid: np.ndarray) -> GridSpec:
+        """A :class:`GridSpec` with ``valid`` (bool, shape (height, width)) as the field mask."""
+        return GridSpec(self.crs, self.transform, self.width, self.height, np.asarray(valid, bool))
+
+
+def read_raster(path: str | Path) -> tuple[np.ndarray, RasterInfo, dict[str, str]]:
+    """Read band 1 of a raster.
+
+    Returns
+    -------
+    array : numpy.ndarray
+        Float rasters as float64 with nodata -> NaN; integer rasters as stored.
+    info : RasterInfo
+        CRS, transform, nodata, description, unit, layout, overviews, colour table.
+    tags : dict of str to str
+        Dataset tags (default namespace).
+    """
+    import rasterio
+
+    with rasterio.open(path) as src:
+        data = src.read(1)
+        if data.dtype.kind == "f":
+            data = data.astype(np.float64)
+            if src.nodata is not None:
+                data[data == src.nodata] = np.nan
+        try:
+            colormap = src.colormap(1)
+        except ValueError:
+            colormap = None
+        info = RasterInfo(
+            crs=normalise_crs(src.crs) if src.crs else "",
+            transform=src.transform, width=src.width, height=src.height, dtype=src.dtypes[0],
+            nodata=src.nodata, description=src.descriptions[0], unit=src.units[0],
+            driver=src.driver, layout=src.tags(ns="IMAGE_STRUCTURE").get("LAYOUT"),
+            overviews=tuple(src.overviews(1)), colormap=colormap, band_tags=src.tags(1),
+        )
+        tags = src.tags()
+    return data, info, tags

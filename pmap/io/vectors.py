@@ -1,0 +1,201 @@
+"""Zone rasters to polygons, and the vector outputs: GeoPackage, Shapefile, WGS 84 GeoJSON.
+
+Each 4-connected patch of one class becomes one polygon ("zone"), numbered 1..n in the
+order :func:`zone_polygons` returns them; :func:`patch_labels` gives the matching label
+raster so per-zone statistics can be taken from any layer on the same grid.
+"""
+
+from __future__ import annotations
+
+import os
+import shutil
+import tempfile
+from collections.abc import Callable, Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from shapely.geometry import shape
+from shapely.geometry.base import BaseGeometry
+
+from pmap.grid import GridSpec
+from pmap.io.crs import normalise_crs
+from pmap.prescribe.zones import label_patches
+
+__all__ = [
+    "ZONE_FIELDS",
+    "SHAPEFILE_FIELDS",
+    "patch_labels",
+    "zone_polygons",
+    "zone_frame",
+    "write_zone_polygons",
+    "write_shapefile",
+    "write_geojson_wgs84",
+]
+
+#: Attribute fields of the zone layer, with units, in column order.
+ZONE_FIELDS: dict[str, str] = {
+    "zone_id": "",
+    "class_id": "",
+    "class_label": "",
+    "area_ha": "ha",
+    "mean_stp_mg_kg": "mg/kg",
+    "mean_available_p_mg_kg": "mg/kg",
+    "p2o5_kg_ha": "kg P2O5/ha",
+    "product": "",
+    "product_kg_ha": "kg/ha",
+    "product_total_kg": "kg",
+}
+
+#: Shapefile names (10 characters or fewer) of :data:`ZONE_FIELDS`.
+SHAPEFILE_FIELDS: dict[str, str] = {
+    "zone_id": "ZONE_ID",
+    "class_id": "CLASS_ID",
+    "class_label": "CLASS_LBL",
+    "area_ha": "AREA_HA",
+    "mean_stp_mg_kg": "STP_MGKG",
+    "mean_available_p_mg_kg": "AVP_MGKG",
+    "p2o5_kg_ha": "P2O5_KGHA",
+    "product": "PRODUCT",
+    "product_kg_ha": "PROD_KGHA",
+    "product_total_kg": "PROD_TOTKG",
+}
+
+Attributes = Sequence[Mapping[str, Any]] | Mapping[int, Mapping[str, Any]] | Callable[[int, int], Mapping[str, Any]]
+
+
+def patch_labels(zones: np.ndarray, grid: GridSpec) -> np.ndarray:
+    """Number every 4-connected patch of equal class 1..n (0 = no zone).
+
+    The numbering of :func:`pmap.prescribe.zones.label_patches`, restricted to
+    ``grid.mask``; patch k is item k - 1 of :func:`zone_polygons`.
+    """
+    zones = np.asarray(zones)
+    if zones.shape != grid.shape:
+        raise ValueError(f"zones shape {zones.shape} does not match grid {grid.shape}")
+    return label_patches(np.where(grid.mask, zones, 0))[0]
+
+
+def zone_polygons(zones: np.ndarray, grid: GridSpec) -> list[tuple[BaseGeometry, int]]:
+    """One polygon per 4-connected patch of a class raster.
+
+    Parameters
+    ----------
+    zones : numpy.ndarray of int, shape grid.shape
+        Class ids; 0 and cells outside ``grid.mask`` are left out.
+    grid : GridSpec
+
+    Returns
+    -------
+    list of (shapely Polygon, int)
+        Polygon in ``grid.crs`` and its class id; item k is patch k + 1 of
+        :func:`patch_labels`.
+    """
+    from rasterio.features import shapes
+
+    labels = patch_labels(zones, grid)
+    zones = np.asarray(zones)
+    found: dict[int, BaseGeometry] = {}
+    for geom, value in shapes(labels, mask=labels > 0, connectivity=4, transform=grid.transform):
+        found[int(value)] = shape(geom)
+    class_of = np.zeros(len(found) + 1, dtype=np.int64)
+    inside = labels > 0
+    class_of[labels[inside]] = zones[inside]
+    return [(found[label], int(class_of[label])) for label in range(1, len(found) + 1)]
+
+
+def zone_frame(patches: Sequence[tuple[BaseGeometry, int]], attributes: Attributes | None, crs: str):
+    """The zone table as a GeoDataFrame with the :data:`ZONE_FIELDS` columns.
+
+    Parameters
+    ----------
+    patches : sequence of (geometry, class_id)
+        From :func:`zone_polygons`.
+    attributes : sequence of mappings, mapping, or callable, optional
+        Field values per zone: a list aligned with ``patches``, a mapping class_id -> values
+        (the same for every patch of a class), or a function ``(zone_id, class_id) -> values``.
+        ``zone_id``, ``class_id`` and ``area_ha`` are computed; ``product_total_kg``
+        defaults to ``product_kg_ha * area_ha``.  Missing fields are left empty; extra keys
+        are kept as extra columns.
+    crs : str
+        CRS of the geometries.
+    """
+    import geopandas as gpd
+
+    if isinstance(attributes, Sequence) and len(attributes) != len(patches):
+        raise ValueError(f"got {len(attributes)} attribute rows for {len(patches)} patches")
+    records = []
+    for k, (geom, cid) in enumerate(patches):
+        zone_id = k + 1
+        if attributes is None:
+            extra: Mapping[str, Any] = {}
+        elif callable(attributes):
+            extra = attributes(zone_id, int(cid))
+        elif isinstance(attributes, Mapping):
+            extra = attributes.get(int(cid), {})
+        else:
+            extra = attributes[k]
+        rec: dict[str, Any] = {name: None for name in ZONE_FIELDS}
+        rec.update({key: value for key, value in extra.items()
+                    if key not in ("zone_id", "class_id", "area_ha")})
+        rec["zone_id"], rec["class_id"] = zone_id, int(cid)
+        rec["area_ha"] = geom.area / 10_000.0
+        if rec.get("product_total_kg") is None and rec.get("product_kg_ha") is not None:
+            rec["product_total_kg"] = float(rec["product_kg_ha"]) * rec["area_ha"]
+        records.append(rec)
+    columns = list(ZONE_FIELDS) + sorted({k for r in records for k in r} - set(ZONE_FIELDS))
+    return gpd.GeoDataFrame(records, columns=columns, geometry=[g for g, _ in patches],
+                            crs=normalise_crs(crs))
+
+
+def write_zone_polygons(path: str | Path, patches: Sequence[tuple[BaseGeometry, int]],
+                        attributes: Attributes | None, crs: str, *, layer: str = "rate_zones") -> Path:
+    """Write the zones as a GeoPackage layer (default ``rate_zones``) with long field names.
+
+    See :func:`zone_frame` for ``attributes``.  Replaces ``path`` atomically.
+    """
+    return _write_atomic(path, zone_frame(patches, attributes, crs), driver="GPKG", layer=layer)
+
+
+def write_shapefile(path: str | Path, gdf) -> Path:
+    """Write a zone table as a Shapefile with the 10-character :data:`SHAPEFILE_FIELDS` names.
+
+    All component files (.shp, .shx, .dbf, .prj, .cpg) are written in a temporary folder
+    beside ``path`` and then moved into place.
+    """
+    path = Path(path)
+    renamed = gdf.rename(columns=SHAPEFILE_FIELDS)
+    too_long = [c for c in renamed.columns if c != renamed.geometry.name and len(c) > 10]
+    if too_long:
+        raise ValueError(f"shapefile field names must be 10 characters or fewer: {too_long}")
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp_dir = Path(tempfile.mkdtemp(prefix=f".{path.stem}.", dir=path.parent))
+    try:
+        renamed.to_file(tmp_dir / path.name, driver="ESRI Shapefile", engine="pyogrio")
+        for part in sorted(tmp_dir.iterdir()):
+            os.replace(part, path.with_suffix(part.suffix))
+    finally:
+        shutil.rmtree(tmp_dir, ignore_errors=True)
+    return path
+
+
+def write_geojson_wgs84(path: str | Path, gdf) -> Path:
+    """Write ``gdf`` reprojected to WGS 84 (EPSG:4326) as GeoJSON, atomically."""
+    return _write_atomic(path, gdf.to_crs("EPSG:4326"), driver="GeoJSON", layer=None)
+
+
+def _write_atomic(path: str | Path, gdf, *, driver: str, layer: str | None) -> Path:
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".tmp{path.suffix}", dir=path.parent)
+    os.close(fd)
+    tmp = Path(tmp_name)
+    tmp.unlink()  # GDAL creates the file itself; an empty file would not be a valid GeoPackage
+    try:
+        kwargs = {"layer": layer} if layer else {}
+        gdf.to_file(tmp, driver=driver, engine="pyogrio", **kwargs)
+        os.replace(tmp, path)
+    finally:
+        if tmp.exists():
+            tmp.unlink()
+    return path

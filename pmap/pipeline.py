@@ -1,0 +1,339 @@
+"""One field, end to end: the only module that knows the order of the stages.
+
+ingest (pmap.io) -> kriging (pmap.geostats) -> soil model (pmap.soil) -> zones and
+rates (pmap.prescribe) -> GeoTIFFs, polygons, maps and summary (pmap.io, pmap.report).
+
+Outputs are written into a hidden sibling directory and renamed into place only when
+every file is complete, so a failed run never leaves an output directory that looks
+finished, and an existing one is replaced only after the new one is whole.
+"""
+
+from __future__ import annotations
+
+import logging
+import warnings
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from pmap.config import FieldConfig, load_config
+from pmap.errors import InputError, InsufficientDataError, OutputExistsError, PmapWarning
+from pmap.geostats.interpolate import Interpolation, interpolate
+from pmap.grid import GridSpec
+from pmap.io import boundary as boundary_io
+from pmap.io.crs import is_projected_metres, normalise_crs, utm_crs_for
+from pmap.io.samples import SampleTable, load_samples
+from pmap.prescribe import rates as rate_rules
+from pmap.prescribe.zones import label_patches, make_zones, patch_means
+from pmap.soil.availability import SoilPools, partition_total_p
+from pmap.soil.conversions import convert_soil_test
+from pmap.soil.fixation import FixationRisk, fixation_risk
+
+__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "PROPERTY_INFO"]
+
+log = logging.getLogger(__name__)
+
+#: Soil properties pmap kriges when present: name -> (title, unit, required).
+PROPERTY_INFO: dict[str, tuple[str, str, bool]] = {
+    "ph": ("Soil pH", "pH units", True),
+    "total_p": ("Total P", "mg/kg", False),
+    "stp": ("Soil-test P", "mg/kg", False),
+    "caco3": ("CaCO3", "%", False),
+    "clay": ("Clay", "%", False),
+    "base_saturation": ("Base saturation", "%", False),
+    "om": ("Organic matter", "%", False),
+}
+
+
+@dataclass(frozen=True)
+class FieldInputs:
+    """Checked inputs of one field, all in the run's projected CRS."""
+
+    samples: SampleTable
+    boundary: Any  # shapely (Multi)Polygon in grid.crs
+    grid: GridSpec
+    n_read: int
+    dropped_outside: tuple[str, ...]
+
+
+@dataclass
+class FieldResult:
+    """What one field's run produced; arrays are 2-D on ``grid`` with NaN outside the field."""
+
+    out_dir: Path
+    grid: GridSpec
+    config: FieldConfig
+    interpolations: dict[str, Interpolation]
+    layers: dict[str, np.ndarray]
+    zone_table: list[dict[str, Any]]
+    patches: list[dict[str, Any]]
+    totals: dict[str, Any]
+    stp_source: dict[str, Any]
+    summary: dict[str, Any] = field(repr=False)
+    outputs: dict[str, str] = field(default_factory=dict, repr=False)
+
+
+def prepare_inputs(
+    samples_path: str | Path, boundary_path: str | Path, config: FieldConfig
+) -> FieldInputs:
+    """Read, check and reproject the samples and the boundary; fix the run's grid."""
+    user_crs = normalise_crs(config.grid.crs) if config.grid.crs else None
+    if user_crs and is_projected_metres(user_crs):
+        working_crs = user_crs
+    else:
+        lon, lat = boundary_io.boundary_lonlat_centroid(boundary_path)
+        working_crs = utm_crs_for(lon, lat)
+    boundary = boundary_io.load_boundary(boundary_path, working_crs)
+    samples = load_samples(samples_path, config.samples, input_crs=user_crs, working_crs=working_crs)
+    n_read = len(samples.ids)
+    inside = boundary_io.samples_inside(samples, boundary, buffer_m=config.grid.sample_buffer_m)
+    if not inside.any():
+        raise InputError(
+            f"{samples_path}: none of the {n_read} samples lies inside the boundary in "
+            f"{boundary_path}; check that both files describe the same field and that the "
+            "coordinate columns (and any --crs) are right"
+        )
+    dropped = tuple(str(i) for i in samples.ids[~inside])
+    if dropped:
+        warnings.warn(
+            f"{samples_path}: {len(dropped)} sample(s) more than {config.grid.sample_buffer_m:g} m "
+            f"outside the boundary were left out: {', '.join(dropped[:10])}"
+            + (" ..." if len(dropped) > 10 else ""),
+            PmapWarning,
+            stacklevel=2,
+        )
+        samples = samples.subset(inside)
+    grid = boundary_io.grid_for_boundary(boundary, working_crs, config.grid.cell_size_m)
+    return FieldInputs(samples, boundary, grid, n_read, dropped)
+
+
+def _krige_properties(inputs: FieldInputs, config: FieldConfig) -> dict[str, Interpolation]:
+    samples, targets = inputs.samples, inputs.grid.inside_coords()
+    results: dict[str, Interpolation] = {}
+    for name, (_title, _unit, required) in PROPERTY_INFO.items():
+        if name not in samples.values:
+            continue
+        values = samples.values[name]
+        ok = np.isfinite(values)
+        try:
+            results[name] = interpolate(
+                name, samples.coords[ok], values[ok], targets, config.kriging
+            )
+        except InsufficientDataError as exc:
+            if required or name in ("total_p", "stp"):
+                raise InsufficientDataError(f"{samples.source}: {exc}") from exc
+            warnings.warn(f"{samples.source}: {name} not mapped: {exc}", PmapWarning, stacklevel=2)
+        log.info("kriged %s from %d samples", name, int(ok.sum()))
+    if "total_p" not in results and "stp" not in results:
+        raise InputError(
+            f"{samples.source}: neither a total P nor a soil-test P column was found; "
+            "name one in the config (samples.total_p_column or samples.stp_column)"
+        )
+    return results
+
+
+def run_field(
+    samples: str | Path,
+    boundary: str | Path,
+    out_dir: str | Path,
+    config: FieldConfig | str | Path | None = None,
+    *,
+    overwrite: bool = False,
+    config_path: str | Path | None = None,
+) -> FieldResult:
+    """Turn one field's soil samples and boundary into maps, zones and a P2O5 prescription.
+
+    Parameters
+    ----------
+    samples : path
+        Lab results: CSV (lat/lon or projected x/y), GeoJSON, GeoPackage or Shapefile.
+    boundary : path
+        Field boundary polygon(s): GeoJSON, GeoPackage or Shapefile.
+    out_dir : path
+        Output directory; refused if it exists and is not empty, unless ``overwrite``.
+    config : FieldConfig, path to a TOML file, or None for the defaults.
+    overwrite : bool
+        Replace an existing output directory (only once the new one is complete).
+    config_path : path, optional
+        Where ``config`` was read from, for the record when a FieldConfig is passed.
+
+    Returns
+    -------
+    FieldResult
+    """
+    if not isinstance(config, FieldConfig):
+        config_path = config if config is not None else config_path
+        config = load_config(config)
+    out_dir = Path(out_dir)
+    _check_output_dir(out_dir, overwrite)
+
+    inputs = prepare_inputs(samples, boundary, config)
+    grid = inputs.grid
+    kriged = _krige_properties(inputs, config)
+
+    def layer(name: str) -> np.ndarray | None:
+        return kriged[name].result.estimate if name in kriged else None
+
+    # Soil model on the kriged layers.
+    soil_inputs = {"caco3_pct": layer("caco3"), "clay_pct": layer("clay"),
+                   "base_saturation_pct": layer("base_saturation")}
+    ph = kriged["ph"].result.estimate
+    pools: SoilPools | None = None
+    if "total_p" in kriged:
+        pools = partition_total_p(ph, layer("total_p"), config.soil, **soil_inputs)
+    risk: FixationRisk = fixation_risk(ph, config.fixation, config.soil, **soil_inputs)
+
+    # The soil-test P that drives zones and rates.
+    stp, method, stp_source = _rate_driver(kriged, pools, inputs.samples.stp_method, config)
+    rule_stp = stp
+    if method != config.rates.soil_test_method:
+        rule_stp = convert_soil_test(stp, method, config.rates.soil_test_method)
+        stp_source["rule_conversion"] = (
+            f"rates.critical_ppm and rates.maintenance_limit_ppm refer to "
+            f"{config.rates.soil_test_method}; {method} values were converted with "
+            "pmap.soil.conversions.convert_soil_test (regional regressions, see docs)"
+        )
+        warnings.warn(stp_source["rule_conversion"], PmapWarning, stacklevel=2)
+
+    # Zones and rates.
+    stp2d = grid.fill(stp)
+    zones = make_zones(stp2d, grid.mask, grid.cell_area_ha, config.zones, method)
+    rate_cells = rate_rules.p2o5_rate_kg_ha(rule_stp, config.rates)
+
+    layers: dict[str, np.ndarray] = {}
+    for name, interp in kriged.items():
+        layers[name] = grid.fill(interp.result.estimate)
+        layers[f"{name}_variance"] = grid.fill(interp.result.variance)
+    if pools is not None:
+        layers["available_p"] = grid.fill(pools.available)
+        layers["fe_al_p"] = grid.fill(pools.fe_al)
+        layers["ca_p"] = grid.fill(pools.ca)
+        layers["occluded_p"] = grid.fill(pools.occluded)
+    if "stp" not in kriged:
+        layers["stp_equivalent"] = stp2d
+    layers["fixation_risk"] = grid.fill(risk.index)
+    layers["fixation_mechanism"] = grid.fill(risk.mechanism, outside=0).astype(np.uint8)
+    layers["fixation_class"] = grid.fill(risk.risk_class, outside=0).astype(np.uint8)
+    layers["zones"] = zones
+    layers["p2o5_rate"] = grid.fill(rate_cells)
+
+    avail2d = layers.get("available_p")
+    patches = _prescription_patches(zones, stp2d, grid.fill(rule_stp), avail2d, grid, config)
+    zone_table, totals = _zone_table(patches, zones, stp2d, avail2d, grid, config)
+
+    result = FieldResult(
+        out_dir=out_dir, grid=grid, config=config, interpolations=kriged, layers=layers,
+        zone_table=zone_table, patches=patches, totals=totals, stp_source=stp_source,
+        summary={},
+    )
+    from pmap.outputs import write_outputs
+
+    write_outputs(result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
+                  config_path=Path(config_path) if config_path else None)
+    return result
+
+
+def _rate_driver(
+    kriged: dict[str, Interpolation], pools: SoilPools | None, lab_method: str | None,
+    config: FieldConfig,
+) -> tuple[np.ndarray, str, dict[str, Any]]:
+    """The soil-test P per cell that drives zones and rates, its method and its provenance."""
+    if "stp" in kriged:
+        method = lab_method or config.rates.soil_test_method
+        return kriged["stp"].result.estimate, method, {
+            "source": "measured", "method": method,
+            "description": f"measured soil-test P ({method}), kriged",
+        }
+    if pools is None:  # guarded by _krige_properties: total P or soil-test P is present
+        raise InputError("no soil-test P and no total P: nothing to base rates on")
+    equivalent = config.soil_test_equivalent
+    description = (
+        f"MODEL ESTIMATE: the samples hold no soil-test P; the model's available P was "
+        f"converted to a {equivalent.method} equivalent (soil_test_equivalent: intercept "
+        f"{equivalent.intercept}, slope {equivalent.slope}); confirm with a lab soil test"
+    )
+    warnings.warn(description, PmapWarning, stacklevel=3)
+    return equivalent.to_soil_test(pools.available), equivalent.method, {
+        "source": "model estimate", "method": equivalent.method, "description": description,
+    }
+
+
+def _prescription_patches(
+    zones: np.ndarray, stp2d: np.ndarray, rule_stp2d: np.ndarray, avail2d: np.ndarray | None,
+    grid: GridSpec, config: FieldConfig,
+) -> list[dict[str, Any]]:
+    """One prescription record per connected zone patch: its area, mean soil test and rate.
+
+    Patch k (``zone_id``) is patch k of :func:`pmap.prescribe.zones.label_patches`, the
+    numbering the polygon writer uses too.  A patch's rate is the rule applied to its mean
+    soil-test P.
+    """
+    labels, patch_class = label_patches(zones)
+    counts = np.bincount(labels.ravel(), minlength=len(patch_class) + 1)[1:]
+    mean_stp = patch_means(labels, stp2d)
+    mean_avail = (patch_means(labels, avail2d) if avail2d is not None
+                  else np.full(len(patch_class), np.nan))
+    rates = rate_rules.p2o5_rate_kg_ha(patch_means(labels, rule_stp2d), config.rates)
+    product_rates = rate_rules.product_kg_ha(rates, config.rates.product)
+    patches = []
+    for i, cls in enumerate(patch_class.tolist()):
+        area = float(counts[i]) * grid.cell_area_ha
+        patches.append({
+            "zone_id": i + 1,
+            "class_id": cls,
+            "class_label": config.zones.labels[cls - 1],
+            "area_ha": area,
+            "mean_stp_mg_kg": float(mean_stp[i]),
+            "mean_available_p_mg_kg": float(mean_avail[i]),
+            "p2o5_kg_ha": float(rates[i]),
+            "product": config.rates.product,
+            "product_kg_ha": float(product_rates[i]),
+            "product_total_kg": float(product_rates[i]) * area,
+        })
+    return patches
+
+
+def _zone_table(
+    patches: list[dict[str, Any]], zones: np.ndarray, stp2d: np.ndarray,
+    avail2d: np.ndarray | None, grid: GridSpec, config: FieldConfig,
+) -> tuple[list[dict[str, Any]], dict[str, Any]]:
+    """Per-class table and field totals from the prescription patches."""
+    table = []
+    for cls in sorted({p["class_id"] for p in patches}):
+        mine = [p for p in patches if p["class_id"] == cls]
+        area = sum(p["area_ha"] for p in mine)
+        in_class = zones == cls
+        table.append({
+            "class_id": cls,
+            "class_label": config.zones.labels[cls - 1],
+            "n_patches": len(mine),
+            "area_ha": round(area, 3),
+            "mean_stp_mg_kg": round(float(np.nanmean(stp2d[in_class])), 2),
+            "mean_available_p_mg_kg": (round(float(np.nanmean(avail2d[in_class])), 2)
+                                       if avail2d is not None else None),
+            "p2o5_kg_ha": round(sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine) / area, 1),
+            "p2o5_total_kg": round(sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine), 1),
+            "product": config.rates.product,
+            "product_total_kg": round(sum(p["product_total_kg"] for p in mine), 1),
+        })
+    area = grid.n_inside * grid.cell_area_ha
+    totals = {
+        "area_ha": round(area, 3),
+        "p2o5_total_kg": round(sum(r["p2o5_total_kg"] for r in table), 1),
+        "product": config.rates.product,
+        "product_total_kg": round(sum(r["product_total_kg"] for r in table), 1),
+        "mean_p2o5_kg_ha": round(sum(r["p2o5_total_kg"] for r in table) / area, 1),
+    }
+    return table, totals
+
+
+def _check_output_dir(out_dir: Path, overwrite: bool) -> None:
+    if out_dir.exists() and not out_dir.is_dir():
+        raise OutputExistsError(f"output path {out_dir} exists and is not a directory")
+    if out_dir.is_dir() and any(out_dir.iterdir()) and not overwrite:
+        raise OutputExistsError(
+            f"output directory {out_dir} exists and is not empty; choose another directory "
+            "or pass --overwrite (overwrite=True) to replace it"
+        )

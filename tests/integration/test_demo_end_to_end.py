@@ -1,0 +1,150 @@
+"""The whole job on the bundled demo field, checked against the truth that generated it."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+import rasterio
+
+from pmap.demo import DEMO_CRS, truth
+from pmap.grid import NODATA
+
+CONTINUOUS = ["ph", "ph_variance", "total_p", "total_p_variance", "stp", "stp_variance",
+              "available_p", "fe_al_p", "ca_p", "occluded_p", "fixation_risk", "p2o5_rate"]
+CLASSES = ["zones", "fixation_mechanism", "fixation_class"]
+
+
+def _read(out, name):
+    with rasterio.open(out / "rasters" / f"{name}.tif") as src:
+        return src.read(1), src.profile, src.tags(), src
+
+
+def test_every_output_exists(demo_run):
+    _result, out = demo_run
+    for name in CONTINUOUS + CLASSES:
+        assert (out / "rasters" / f"{name}.tif").is_file(), name
+        assert (out / "maps" / f"{name}.png").stat().st_size > 20_000, name
+    for name in ("ph", "total_p", "stp"):
+        assert (out / "maps" / f"variogram_{name}.png").is_file()
+    for name in ("rate_zones.gpkg", "rate_zones.geojson", "summary.json",
+                 "inputs/samples.csv", "inputs/boundary.geojson", "inputs/field.toml"):
+        assert (out / name).is_file(), name
+    assert not list(out.parent.glob(".*partial*")), "staging directory left behind"
+
+
+@pytest.mark.parametrize("name", CONTINUOUS + CLASSES)
+def test_geotiffs_are_cogs_with_crs_nodata_and_description(demo_run, name):
+    result, out = demo_run
+    with rasterio.open(out / "rasters" / f"{name}.tif") as src:
+        assert src.crs.to_string() == DEMO_CRS
+        assert src.tags(ns="IMAGE_STRUCTURE").get("LAYOUT") == "COG"
+        assert src.descriptions[0]
+        assert src.units[0]
+        assert src.tags()["PMAP_VERSION"]
+        data = src.read(1)
+        assert src.nodata is not None
+        outside = ~result.grid.mask
+        assert np.all(data[outside] == src.nodata)
+        assert np.all(data[result.grid.mask] != src.nodata)
+        if name in CLASSES:
+            assert src.dtypes[0] == "uint8" and src.nodata == 0
+            assert src.colormap(1)[1][3] == 255
+        else:
+            assert src.dtypes[0] == "float32" and src.nodata == NODATA
+
+
+def test_values_in_physical_ranges(demo_run):
+    result, out = demo_run
+    inside = result.grid.mask
+    ph = _read(out, "ph")[0][inside]
+    assert 4.5 < ph.min() and ph.max() < 8.8
+    for name in ("total_p", "stp", "available_p", "fe_al_p", "ca_p", "occluded_p"):
+        assert _read(out, name)[0][inside].min() >= 0, name
+    for name in ("ph_variance", "total_p_variance", "stp_variance"):
+        assert _read(out, name)[0][inside].min() >= 0, name
+    risk = _read(out, "fixation_risk")[0][inside]
+    assert 0 <= risk.min() and risk.max() <= 1
+    rate = _read(out, "p2o5_rate")[0][inside]
+    cap = result.config.rates.max_rate_kg_ha
+    assert 0 <= rate.min() and rate.max() <= cap
+    zones = _read(out, "zones")[0][inside]
+    assert set(np.unique(zones)) <= {1, 2, 3, 4, 5}
+    # The demo spans acid and calcareous soil: both fixation mechanisms must appear.
+    mech = _read(out, "fixation_mechanism")[0][inside]
+    assert {1, 2} <= set(np.unique(mech))
+
+
+def _rmse_against_truth(result, name):
+    x, y = result.grid.cell_centres()
+    inside = result.grid.mask
+    true = truth(x[inside], y[inside])[name]
+    est = result.layers[name][inside]
+    return float(np.sqrt(np.mean((est - true) ** 2))), float(np.std(true))
+
+
+def test_kriged_ph_close_to_the_demo_truth(demo_run):
+    result, _out = demo_run
+    rmse, spread = _rmse_against_truth(result, "ph")
+    print(f"demo pH: RMSE against truth {rmse:.3f} pH units (truth sd {spread:.2f})")
+    # Lab noise alone is 0.08 pH units (plus 0.05 from rounding to 0.1).
+    assert rmse < 0.15
+
+
+def test_kriged_p_close_to_the_demo_truth(demo_run):
+    result, _out = demo_run
+    for name, limit in (("total_p", 0.06), ("stp", 0.12)):
+        rmse, spread = _rmse_against_truth(result, name)
+        x, y = result.grid.cell_centres()
+        mean_true = float(np.mean(truth(x, y)[name][result.grid.mask]))
+        print(f"demo {name}: RMSE {rmse:.2f} mg/kg ({rmse / mean_true:.1%} of mean; truth sd {spread:.1f})")
+        assert rmse / mean_true < limit
+
+
+def test_summary_json(demo_run):
+    result, out = demo_run
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["crs"] == DEMO_CRS
+    assert summary["field"]["name"] == "Long Meadow"
+    assert summary["soil_test_p_driving_rates"]["source"] == "measured"
+    for name in ("ph", "total_p", "stp"):
+        prop = summary["properties"][name]
+        assert prop["model"]["kind"] in ("spherical", "exponential", "gaussian")
+        assert set(prop["cv"]) >= {"mean_error", "rmse", "msdr"}
+        assert 0.3 < prop["cv"]["msdr"] < 3
+    area = sum(z["area_ha"] for z in summary["zones"])
+    assert area == pytest.approx(summary["grid"]["area_ha"], rel=1e-6)
+    assert summary["totals"]["p2o5_total_kg"] == pytest.approx(
+        sum(z["p2o5_total_kg"] for z in summary["zones"]), abs=1)
+    assert "agronomist" in summary["cautions"]
+    assert summary["pmap_version"]
+
+
+def test_rate_zone_polygons(demo_run):
+    import geopandas as gpd
+
+    result, out = demo_run
+    zones = gpd.read_file(out / "rate_zones.gpkg", layer="rate_zones")
+    assert zones.crs.to_string() == DEMO_CRS
+    for column in ("zone_id", "class_id", "class_label", "area_ha", "p2o5_kg_ha",
+                   "product_kg_ha", "product_total_kg"):
+        assert column in zones.columns
+    # Polygon areas agree with the raster cell counts and sum to the field's mapped area.
+    assert zones.geometry.area.sum() / 1e4 == pytest.approx(result.totals["area_ha"], rel=1e-9)
+    assert np.allclose(zones.geometry.area / 1e4, zones["area_ha"], rtol=1e-9)
+    wgs = gpd.read_file(out / "rate_zones.geojson")
+    assert wgs.crs.to_epsg() == 4326 and len(wgs) == len(zones)
+
+
+def test_committed_demo_inputs_match_the_generator(tmp_path):
+    from pathlib import Path
+
+    from pmap.demo import write_demo_inputs
+
+    committed = Path(__file__).resolve().parents[2] / "demo_grids"
+    if not committed.is_dir():
+        pytest.skip("demo_grids/ is not beside the tests (installed package only)")
+    fresh = write_demo_inputs(tmp_path)
+    for path in fresh.values():
+        assert (committed / path.name).read_bytes() == path.read_bytes(), path.name

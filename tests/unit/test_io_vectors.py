@@ -1,0 +1,103 @@
+"""Zone polygons from class rasters, and GeoPackage / Shapefile / GeoJSON output."""
+
+from __future__ import annotations
+
+import geopandas as gpd
+import numpy as np
+import pytest
+import shapely
+
+from pmap.grid import GridSpec
+from pmap.io.vectors import (
+    SHAPEFILE_FIELDS,
+    ZONE_FIELDS,
+    patch_labels,
+    write_geojson_wgs84,
+    write_shapefile,
+    write_zone_polygons,
+    zone_frame,
+    zone_polygons,
+)
+
+UTM = "EPSG:32616"
+
+
+def _zones():
+    grid = GridSpec.from_bounds(UTM, (338000, 4440000, 338100, 4440080), 10.0)  # 10 x 8 cells
+    zones = np.ones(grid.shape, np.uint8)
+    zones[:, 5:] = 2
+    zones[2:4, 1:3] = 3  # an island of class 3 inside class 1
+    zones[6:, 8:] = 3  # a second, separate patch of class 3
+    mask = np.ones(grid.shape, bool)
+    mask[0, 0] = False
+    return grid.with_mask(mask), zones
+
+
+def test_patch_areas_sum_to_class_areas():
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    assert [c for _, c in patches] == [1, 2, 3, 3]
+    for cid in (1, 2, 3):
+        area = sum(g.area for g, c in patches if c == cid)
+        cells = int(((zones == cid) & grid.mask).sum())
+        assert area == pytest.approx(cells * grid.cell_size**2)
+    union = shapely.union_all([g for g, _ in patches])
+    assert union.area == pytest.approx(grid.n_inside * 100.0)
+    island = patches[0][0]
+    assert len(island.interiors) == 1  # class 1 surrounds the class 3 island
+
+
+def test_patch_labels_match_polygons():
+    grid, zones = _zones()
+    labels = patch_labels(zones, grid)
+    patches = zone_polygons(zones, grid)
+    assert labels.max() == len(patches) and labels[0, 0] == 0
+    for k, (geom, cid) in enumerate(patches, start=1):
+        assert (labels == k).sum() * 100.0 == pytest.approx(geom.area)
+        assert set(np.unique(zones[labels == k])) == {cid}
+
+
+def test_geopackage_layer_fields_and_totals(tmp_path):
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    rows = [{"class_label": {1: "low", 2: "medium", 3: "high"}[c], "mean_stp_mg_kg": 10.0 + c,
+             "p2o5_kg_ha": 80.0 - 20 * c, "product": "MAP 11-52-0",
+             "product_kg_ha": (80.0 - 20 * c) / 0.52} for _, c in patches]
+    path = write_zone_polygons(tmp_path / "rate_zones.gpkg", patches, rows, UTM)
+    back = gpd.read_file(path, layer="rate_zones")
+    assert list(back.columns[: len(ZONE_FIELDS)]) == list(ZONE_FIELDS)
+    assert back.crs.to_epsg() == 32616
+    assert back["zone_id"].tolist() == [1, 2, 3, 4]
+    np.testing.assert_allclose(back["area_ha"].sum(), grid.n_inside * grid.cell_area_ha)
+    np.testing.assert_allclose(back["product_total_kg"], back["product_kg_ha"] * back["area_ha"])
+    assert back["mean_available_p_mg_kg"].isna().all()
+    assert not list(tmp_path.glob(".*"))
+
+
+def test_attributes_per_class_or_callable():
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    per_class = zone_frame(patches, {1: {"class_label": "low"}, 3: {"class_label": "high"}}, UTM)
+    labels_out = per_class["class_label"].tolist()
+    assert labels_out[0] == "low" and labels_out[2:] == ["high", "high"]
+    assert per_class["class_label"].isna()[1]
+    labels = patch_labels(zones, grid)
+    values = np.arange(zones.size, dtype=float).reshape(zones.shape)
+    by_mask = zone_frame(patches, lambda zid, cid: {"mean_stp_mg_kg": float(values[labels == zid].mean())}, UTM)
+    assert by_mask["mean_stp_mg_kg"][1] == pytest.approx(values[labels == 2].mean())
+    with pytest.raises(ValueError, match="attribute rows"):
+        zone_frame(patches, [{}], UTM)
+
+
+def test_shapefile_short_names_and_geojson_wgs84(tmp_path):
+    grid, zones = _zones()
+    gdf = zone_frame(zone_polygons(zones, grid), None, UTM)
+    shp = write_shapefile(tmp_path / "rate_zones.shp", gdf)
+    back = gpd.read_file(shp)
+    assert set(SHAPEFILE_FIELDS.values()) <= set(back.columns)
+    assert all(len(c) <= 10 for c in back.columns)
+    assert shp.with_suffix(".prj").exists()
+    gj = write_geojson_wgs84(tmp_path / "rate_zones.geojson", gdf)
+    ll = gpd.read_file(gj)
+    assert ll.crs.to_epsg() == 4326
+    np.testing.assert_allclose(ll.to_crs(UTM).area.sum(), gdf.area.sum(), rtol=1e-6)

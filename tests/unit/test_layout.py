@@ -1,0 +1,52 @@
+"""The layout's promise: the numerics import no file I/O, plotting or CLI code."""
+
+from __future__ import annotations
+
+import subprocess
+import sys
+
+import pytest
+
+NUMERIC_MODULES = [
+    "pmap.grid",
+    "pmap.geostats",
+    "pmap.geostats.variogram",
+    "pmap.geostats.kriging",
+    "pmap.geostats.crossval",
+    "pmap.geostats.interpolate",
+    "pmap.soil",
+    "pmap.soil.sorption",
+    "pmap.soil.availability",
+    "pmap.soil.fixation",
+    "pmap.soil.conversions",
+    "pmap.prescribe",
+    "pmap.prescribe.rates",
+    "pmap.prescribe.zones",
+]
+
+FORBIDDEN = [
+    "rasterio", "geopandas", "pyogrio", "fiona", "shapely", "pyproj", "pandas", "matplotlib",
+    "click", "pmap.io", "pmap.report", "pmap.cli", "pmap.pipeline", "pmap.outputs", "pmap.config",
+]
+
+
+def _leaked(module: str) -> list[str]:
+    """Forbidden modules that importing ``module`` in a fresh interpreter pulls in."""
+    code = (
+        "import sys, importlib\n"
+        f"importlib.import_module({module!r})\n"
+        f"print(','.join(m for m in {FORBIDDEN!r} if m in sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    return [m for m in out.stdout.strip().split(",") if m]
+
+
+@pytest.mark.parametrize("module", NUMERIC_MODULES)
+def test_numerics_import_no_io_plotting_or_cli(module):
+    # A fresh interpreter, so modules other tests imported do not hide a leak.
+    assert _leaked(module) == [], f"{module} pulled in {_leaked(module)}"
+
+
+def test_checker_sees_a_leak():
+    # The check above must be able to fail: the pipeline does import the I/O edges.
+    assert "pmap.io" in _leaked("pmap.pipeline")
