@@ -131,6 +131,7 @@ class GridSpec:
 
     def rowcol(self, x: np.ndarray, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Row and column indices of the cells holding points ``x``, ``y`` (may fall outside)."""
-        inv = ~self.transform
-        col, row = inv * (np.asarray(x, float), np.asarray(y, float))
+        t = self.transform
+        col = (np.asarray(x, float) - t.c) / t.a
+        row = (np.asarray(y, float) - t.f) / t.e
         return np.floor(row).astype(int), np.floor(col).astype(int)

@@ -68,7 +68,8 @@ LAYERS: dict[str, LayerInfo] = {
     "zones": LayerInfo(
         "Soil-test P zones", "class",
         classes={i + 1: label for i, label in enumerate(CLASS_LABELS)}, colours=_ZONE_COLOURS),
-    "p2o5_rate": LayerInfo("P2O5 rate", "kg P2O5/ha", "viridis"),
+    "p2o5_rate": LayerInfo("P2O5 rate per cell", "kg P2O5/ha", "viridis"),
+    "p2o5_zone_rate": LayerInfo("P2O5 rate by zone (prescription)", "kg P2O5/ha", "viridis"),
 }
 
 
@@ -161,7 +162,7 @@ def _provenance(result: FieldResult, name: str) -> dict[str, str]:
     elif name in ("available_p", "fe_al_p", "ca_p", "occluded_p", "fixation_risk",
                   "fixation_mechanism", "fixation_class"):
         tags["METHOD"] = "pmap soil model v1 on kriged inputs (docs/soil-model.md)"
-    elif name in ("zones", "p2o5_rate", "stp_equivalent"):
+    elif name in ("zones", "p2o5_rate", "p2o5_zone_rate", "stp_equivalent"):
         tags["METHOD"] = f"pmap rates v1; soil-test P: {result.stp_source['description']}"
     return tags
 
@@ -224,6 +225,8 @@ def write_outputs(
         outputs["rate_zones.gpkg"] = "rate-zone polygons (layer rate_zones) with class, area, rate"
         vectors.write_geojson_wgs84(tmp / "rate_zones.geojson", frame)
         outputs["rate_zones.geojson"] = "the same polygons in WGS84 GeoJSON"
+        vectors.write_shapefile(tmp / "shapefile" / "rate_zones.shp", frame)
+        outputs["shapefile/rate_zones.shp"] = "the same polygons as a Shapefile (10-character field names)"
 
         copied = {
             "samples": _copy_input(samples_path, tmp / "inputs"),
@@ -305,6 +308,7 @@ def _summary(result, inputs, samples_path, boundary_path, config_path, copied, o
                       for k, v in result.config.as_dict()["rates"].items()},
         "zones": result.zone_table,
         "totals": result.totals,
+        "warnings": result.warnings,
         "outputs": outputs,
         "config": result.config.as_dict(),
         "cautions": CAUTIONS,

@@ -73,6 +73,7 @@ class FieldResult:
     stp_source: dict[str, Any]
     summary: dict[str, Any] = field(repr=False)
     outputs: dict[str, str] = field(default_factory=dict, repr=False)
+    warnings: list[str] = field(default_factory=list)
 
 
 def prepare_inputs(
@@ -169,7 +170,23 @@ def run_field(
     out_dir = Path(out_dir)
     _check_output_dir(out_dir, overwrite)
 
-    inputs = prepare_inputs(samples, boundary, config)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always", PmapWarning)
+        inputs = prepare_inputs(samples, boundary, config)
+        result = _compute(inputs, config, out_dir)
+    for w in caught:  # show them as usual, and keep pmap's own for the summary
+        warnings.showwarning(w.message, w.category, w.filename, w.lineno)
+    result.warnings = [str(w.message) for w in caught if issubclass(w.category, PmapWarning)]
+
+    from pmap.outputs import write_outputs
+
+    write_outputs(result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
+                  config_path=Path(config_path) if config_path else None)
+    return result
+
+
+def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldResult:
+    """Every stage between ingest and output: kriging, soil model, zones and rates."""
     grid = inputs.grid
     kriged = _krige_properties(inputs, config)
 
@@ -220,19 +237,17 @@ def run_field(
     layers["p2o5_rate"] = grid.fill(rate_cells)
 
     avail2d = layers.get("available_p")
-    patches = _prescription_patches(zones, stp2d, grid.fill(rule_stp), avail2d, grid, config)
+    patches, labels = _prescription_patches(zones, stp2d, grid.fill(rule_stp), avail2d, grid,
+                                            config)
+    zone_rates = np.array([np.nan] + [p["p2o5_kg_ha"] for p in patches])
+    layers["p2o5_zone_rate"] = zone_rates[labels]
     zone_table, totals = _zone_table(patches, zones, stp2d, avail2d, grid, config)
 
-    result = FieldResult(
+    return FieldResult(
         out_dir=out_dir, grid=grid, config=config, interpolations=kriged, layers=layers,
         zone_table=zone_table, patches=patches, totals=totals, stp_source=stp_source,
         summary={},
     )
-    from pmap.outputs import write_outputs
-
-    write_outputs(result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
-                  config_path=Path(config_path) if config_path else None)
-    return result
 
 
 def _rate_driver(
@@ -263,12 +278,12 @@ def _rate_driver(
 def _prescription_patches(
     zones: np.ndarray, stp2d: np.ndarray, rule_stp2d: np.ndarray, avail2d: np.ndarray | None,
     grid: GridSpec, config: FieldConfig,
-) -> list[dict[str, Any]]:
+) -> tuple[list[dict[str, Any]], np.ndarray]:
     """One prescription record per connected zone patch: its area, mean soil test and rate.
 
     Patch k (``zone_id``) is patch k of :func:`pmap.prescribe.zones.label_patches`, the
     numbering the polygon writer uses too.  A patch's rate is the rule applied to its mean
-    soil-test P.
+    soil-test P.  Returns the records and the patch-label raster (0 outside).
     """
     labels, patch_class = label_patches(zones)
     counts = np.bincount(labels.ravel(), minlength=len(patch_class) + 1)[1:]
@@ -292,7 +307,7 @@ def _prescription_patches(
             "product_kg_ha": float(product_rates[i]),
             "product_total_kg": float(product_rates[i]) * area,
         })
-    return patches
+    return patches, labels
 
 
 def _zone_table(

@@ -12,7 +12,8 @@ from pmap.demo import DEMO_CRS, truth
 from pmap.grid import NODATA
 
 CONTINUOUS = ["ph", "ph_variance", "total_p", "total_p_variance", "stp", "stp_variance",
-              "available_p", "fe_al_p", "ca_p", "occluded_p", "fixation_risk", "p2o5_rate"]
+              "available_p", "fe_al_p", "ca_p", "occluded_p", "fixation_risk", "p2o5_rate",
+              "p2o5_zone_rate"]
 CLASSES = ["zones", "fixation_mechanism", "fixation_class"]
 
 
@@ -28,7 +29,7 @@ def test_every_output_exists(demo_run):
         assert (out / "maps" / f"{name}.png").stat().st_size > 20_000, name
     for name in ("ph", "total_p", "stp"):
         assert (out / "maps" / f"variogram_{name}.png").is_file()
-    for name in ("rate_zones.gpkg", "rate_zones.geojson", "summary.json",
+    for name in ("rate_zones.gpkg", "rate_zones.geojson", "shapefile/rate_zones.shp", "summary.json",
                  "inputs/samples.csv", "inputs/boundary.geojson", "inputs/field.toml"):
         assert (out / name).is_file(), name
     assert not list(out.parent.glob(".*partial*")), "staging directory left behind"
@@ -66,9 +67,10 @@ def test_values_in_physical_ranges(demo_run):
         assert _read(out, name)[0][inside].min() >= 0, name
     risk = _read(out, "fixation_risk")[0][inside]
     assert 0 <= risk.min() and risk.max() <= 1
-    rate = _read(out, "p2o5_rate")[0][inside]
     cap = result.config.rates.max_rate_kg_ha
-    assert 0 <= rate.min() and rate.max() <= cap
+    for name in ("p2o5_rate", "p2o5_zone_rate"):
+        rate = _read(out, name)[0][inside]
+        assert 0 <= rate.min() and rate.max() <= cap, name
     zones = _read(out, "zones")[0][inside]
     assert set(np.unique(zones)) <= {1, 2, 3, 4, 5}
     # The demo spans acid and calcareous soil: both fixation mechanisms must appear.

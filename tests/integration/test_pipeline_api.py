@@ -1,0 +1,82 @@
+"""run_field from Python: the model path (no lab soil-test P) and other-method rules."""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import pmap
+from pmap.demo import write_demo_inputs
+from pmap.prescribe.rates import p2o5_rate_kg_ha
+from pmap.soil.conversions import convert_soil_test
+
+
+@pytest.fixture(scope="module")
+def demo_inputs(tmp_path_factory):
+    return write_demo_inputs(tmp_path_factory.mktemp("inputs"))
+
+
+def _run(samples, boundary, out, config):
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return pmap.run_field(samples, boundary, out, config)
+
+
+def test_without_soil_test_p_rates_come_from_the_flagged_model_estimate(demo_inputs, tmp_path):
+    table = pd.read_csv(demo_inputs["samples"]).drop(columns=["mehlich3_p"])
+    samples = tmp_path / "no_stp.csv"
+    table.to_csv(samples, index=False)
+    config = pmap.load_config().replace("grid", cell_size_m=20.0)
+    with pytest.warns(pmap.PmapWarning, match="MODEL ESTIMATE"):
+        result = pmap.run_field(samples, demo_inputs["boundary"], tmp_path / "out", config)
+    assert result.stp_source["source"] == "model estimate"
+    assert "stp" not in result.interpolations
+    # The soil-test equivalent is the configured conversion of the model's available P.
+    inside = result.grid.mask
+    expected = config.soil_test_equivalent.to_soil_test(result.layers["available_p"][inside])
+    assert np.allclose(result.layers["stp_equivalent"][inside], expected)
+    assert np.allclose(result.layers["p2o5_rate"][inside], p2o5_rate_kg_ha(expected, config.rates),
+                       equal_nan=True)
+    summary = json.loads((tmp_path / "out" / "summary.json").read_text())
+    assert summary["soil_test_p_driving_rates"]["source"] == "model estimate"
+    assert any("MODEL ESTIMATE" in w for w in summary["warnings"])
+    assert (tmp_path / "out" / "rasters" / "stp_equivalent.tif").is_file()
+
+
+def test_zone_rate_raster_matches_the_polygons(demo_inputs, tmp_path):
+    import geopandas as gpd
+
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0)
+    result = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out", config)
+    zones = gpd.read_file(tmp_path / "out" / "rate_zones.gpkg", layer="rate_zones")
+    painted = result.layers["p2o5_zone_rate"]
+    for _, row in zones.iterrows():
+        # Every cell whose centre is in the polygon carries that polygon's rate.
+        point = row.geometry.representative_point()
+        r, c = result.grid.rowcol(np.array([point.x]), np.array([point.y]))
+        assert painted[r[0], c[0]] == pytest.approx(row["p2o5_kg_ha"])
+    # A patch's rate is the rule applied to its mean soil-test P.
+    expected = p2o5_rate_kg_ha(zones["mean_stp_mg_kg"].to_numpy(), config.rates)
+    assert np.allclose(zones["p2o5_kg_ha"], expected)
+    shp = gpd.read_file(tmp_path / "out" / "shapefile" / "rate_zones.shp")
+    assert len(shp) == len(zones) and "P2O5_KGHA" in shp.columns
+
+
+def test_bray_samples_are_converted_to_the_rules_method(demo_inputs, tmp_path):
+    table = pd.read_csv(demo_inputs["samples"])
+    # Source: Ohio State FAQ, Bray-1 = -8.08 + 0.832 x Mehlich-3 ICP (see DOMAIN.md)
+    bray = convert_soil_test(table["mehlich3_p"].to_numpy(), "mehlich3_icp", "bray1")
+    samples = tmp_path / "bray.csv"
+    table.drop(columns=["mehlich3_p"]).assign(bray1_p=np.round(bray, 1)).to_csv(samples, index=False)
+    config = pmap.load_config().replace("grid", cell_size_m=20.0)
+    with pytest.warns(pmap.PmapWarning, match="converted"):
+        result = pmap.run_field(samples, demo_inputs["boundary"], tmp_path / "out", config)
+    assert result.stp_source["method"] == "bray1"
+    inside = result.grid.mask
+    stp = result.layers["stp"][inside]
+    rule_stp = convert_soil_test(stp, "bray1", "mehlich3_icp")
+    assert np.allclose(result.layers["p2o5_rate"][inside], p2o5_rate_kg_ha(rule_stp, config.rates))
