@@ -52,6 +52,17 @@ def test_version_tells_pmap_apart_from_procps():
     assert "soil phosphorus maps" in proc.stdout
 
 
+def test_demo_refuses_a_non_empty_output_directory(tmp_path):
+    out = tmp_path / "out"
+    out.mkdir()
+    (out / "keep.txt").write_text("precious")
+    proc = pmap_cli("demo", out)
+    assert proc.returncode == 4, proc.stderr
+    assert "--overwrite" in proc.stderr
+    assert [p.name for p in out.iterdir()] == ["keep.txt"]
+    assert not list(tmp_path.glob(".out.*")), "staging directory left behind"
+
+
 def test_run_on_own_files_and_refuse_to_overwrite(field, tmp_path):
     paths, _ = field
     out = tmp_path / "out"
@@ -72,6 +83,14 @@ def test_run_on_own_files_and_refuse_to_overwrite(field, tmp_path):
                       "--overwrite")
     assert forced.returncode == 0, forced.stderr
     assert json.loads((out / "summary.json").read_text())["grid"]["cell_size_m"] == 5
+
+    # A failing run with --overwrite leaves the previous complete output as it was.
+    kept = (out / "summary.json").read_bytes()
+    failed = pmap_cli("run", tmp_path / "missing.csv", "--boundary", paths["boundary"],
+                      "--out", out, "--overwrite")
+    assert failed.returncode == 3
+    assert (out / "summary.json").read_bytes() == kept
+    assert not list(tmp_path.glob(".out.*")), "staging directory left behind"
 
 
 def test_projected_xy_needs_crs_then_works_with_it(field, tmp_path):

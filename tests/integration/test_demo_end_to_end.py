@@ -90,13 +90,15 @@ def test_kriged_ph_close_to_the_demo_truth(demo_run):
     result, _out = demo_run
     rmse, spread = _rmse_against_truth(result, "ph")
     print(f"demo pH: RMSE against truth {rmse:.3f} pH units (truth sd {spread:.2f})")
-    # Lab noise alone is 0.08 pH units (plus 0.05 from rounding to 0.1).
-    assert rmse < 0.15
+    # Lab noise on the samples is 0.08 pH units (plus rounding to 0.1); kriging averages
+    # it out, reaching 0.040 pH units when this test was written.
+    assert rmse < 0.08
 
 
 def test_kriged_p_close_to_the_demo_truth(demo_run):
     result, _out = demo_run
-    for name, limit in (("total_p", 0.06), ("stp", 0.12)):
+    # Reached when written: total P 2.4 %, soil-test P 5.9 % of the mean.
+    for name, limit in (("total_p", 0.04), ("stp", 0.09)):
         rmse, spread = _rmse_against_truth(result, name)
         x, y = result.grid.cell_centres()
         mean_true = float(np.mean(truth(x, y)[name][result.grid.mask]))

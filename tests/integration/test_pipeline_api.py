@@ -80,3 +80,35 @@ def test_bray_samples_are_converted_to_the_rules_method(demo_inputs, tmp_path):
     stp = result.layers["stp"][inside]
     rule_stp = convert_soil_test(stp, "bray1", "mehlich3_icp")
     assert np.allclose(result.layers["p2o5_rate"][inside], p2o5_rate_kg_ha(rule_stp, config.rates))
+
+
+def test_a_failure_while_writing_leaves_no_output_and_keeps_the_old_one(demo_inputs, tmp_path,
+                                                                         monkeypatch):
+    from pmap.report import maps
+
+    out = tmp_path / "out"
+    config = pmap.load_config().replace("grid", cell_size_m=25.0)
+    _run(demo_inputs["samples"], demo_inputs["boundary"], out, config)
+    before = (out / "summary.json").read_bytes()
+    real_plot = maps.plot_layer
+    calls = {"n": 0}
+
+    def fail_on_third(*args, **kwargs):
+        calls["n"] += 1
+        if calls["n"] == 3:
+            raise OSError("disk full (simulated)")
+        return real_plot(*args, **kwargs)
+
+    monkeypatch.setattr(maps, "plot_layer", fail_on_third)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        with pytest.raises(OSError, match="simulated"):
+            pmap.run_field(demo_inputs["samples"], demo_inputs["boundary"], out, config,
+                           overwrite=True)
+        calls["n"] = 0
+        with pytest.raises(OSError, match="simulated"):
+            pmap.run_field(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "fresh",
+                           config)
+    assert (out / "summary.json").read_bytes() == before, "the old output was damaged"
+    assert not (tmp_path / "fresh").exists(), "a half-written output was left"
+    assert not list(tmp_path.glob(".*partial*")), "a staging directory was left"
