@@ -73,6 +73,10 @@ LAYERS: dict[str, LayerInfo] = {
 }
 
 
+#: Layers that carry advice, so their maps carry the cautions.
+_PRESCRIPTION_LAYERS = ("zones", "p2o5_rate", "p2o5_zone_rate", "stp_equivalent")
+
+
 def layer_info(name: str, zone_labels: tuple[str, ...] | None = None) -> LayerInfo:
     """Description of a layer, including ``<property>_variance`` layers.
 
@@ -93,6 +97,13 @@ def layer_info(name: str, zone_labels: tuple[str, ...] | None = None) -> LayerIn
         unit = "pH units^2" if base.unit == "pH units" else f"({base.unit})^2"
         return LayerInfo(base.title.replace("(kriged)", "kriging variance"), unit, "magma")
     return LAYERS[name]
+
+
+def _model_text(interp: Any) -> str:
+    """One line describing a fitted variogram and its cross-validation, for plots."""
+    m, cv = interp.model, interp.cv
+    return (f"{m.kind}: nugget {m.nugget:.3g}, partial sill {m.psill:.3g}, range {m.range:.0f} m"
+            f" | n = {cv.n}, LOO RMSE {cv.rmse:.3g}, MSDR {cv.msdr:.2f}")
 
 
 def _hex_to_rgba(colour: str) -> tuple[int, int, int, int]:
@@ -205,6 +216,7 @@ def write_outputs(
                 title=f"{result.config.field.name}: {info.title}", unit=info.unit,
                 subtitle=subtitle, samples_xy=samples_xy, boundary=inputs.boundary,
                 classes=info.classes, colours=info.colours, cmap=info.cmap,
+                footnote=CAUTIONS_SHORT if name in _PRESCRIPTION_LAYERS else "",
             )
             outputs[f"maps/{name}.png"] = f"review map of {info.title}"
         for name, interp in result.interpolations.items():
@@ -214,6 +226,7 @@ def write_outputs(
                 interp.model, title=f"{result.config.field.name}: variogram of "
                 + ("log " if interp.log else "") + layer_info(name).title.replace(" (kriged)", ""),
                 unit=("log units" if interp.log else layer_info(name).unit),
+                subtitle=_model_text(interp),
             )
             outputs[f"maps/variogram_{name}.png"] = f"empirical and fitted variogram of {name}"
 

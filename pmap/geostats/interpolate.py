@@ -13,6 +13,7 @@ from typing import Any
 
 import numpy as np
 
+from pmap._checks import check_number, check_whole
 from pmap.errors import ConfigError, InputError, InsufficientDataError, ModelFitError, PmapWarning
 from pmap.geostats.crossval import CrossValidation, leave_one_out
 from pmap.geostats.kriging import (
@@ -23,6 +24,7 @@ from pmap.geostats.kriging import (
     ordinary_kriging,
 )
 from pmap.geostats.variogram import (
+    _MAX_RANGE_FACTOR,
     MODELS,
     EmpiricalVariogram,
     VariogramModel,
@@ -115,22 +117,16 @@ class KrigingSettings:
             raise ConfigError(f"kriging.models: unknown model(s) {unknown}; choose from {list(MODELS)}")
         if len(set(self.models)) != len(self.models):
             raise ConfigError(f"kriging.models lists a model twice: {list(self.models)}")
-        if not _is_int(self.n_bins) or self.n_bins < 3:
-            raise ConfigError(f"kriging.n_bins must be a whole number >= 3, got {self.n_bins}")
-        if not (isinstance(self.cutoff_fraction, (int, float)) and 0 < self.cutoff_fraction <= 1):
-            raise ConfigError(f"kriging.cutoff_fraction must be in (0, 1], got {self.cutoff_fraction}")
+        check_whole("kriging.n_bins", self.n_bins, ge=3)
+        check_number("kriging.cutoff_fraction", self.cutoff_fraction, gt=0, le=1)
         if self.log_transform not in _LOG_CHOICES:
             raise ConfigError(
                 f"kriging.log_transform must be one of {list(_LOG_CHOICES)}, got {self.log_transform!r}"
             )
-        if not _is_int(self.min_samples) or self.min_samples < 5:
-            raise ConfigError(f"kriging.min_samples must be a whole number >= 5, got {self.min_samples}")
+        check_whole("kriging.min_samples", self.min_samples, ge=5)
         for key in ("lab_error_sd_ph", "lab_error_cv"):
-            value = getattr(self, key)
-            if not (isinstance(value, (int, float)) and 0 <= value < 1):
-                raise ConfigError(f"kriging.{key} must be in [0, 1), got {value}")
-        if not _is_int(self.chunk_size) or self.chunk_size < 1:
-            raise ConfigError(f"kriging.chunk_size must be a whole number >= 1, got {self.chunk_size}")
+            check_number(f"kriging.{key}", getattr(self, key), ge=0, lt=1)
+        check_whole("kriging.chunk_size", self.chunk_size, ge=1)
 
 
 def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSettings) -> float:
@@ -145,10 +141,6 @@ def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSett
     if log:
         return float(np.log1p(cv**2))
     return float((cv * np.mean(values)) ** 2)
-
-
-def _is_int(value: Any) -> bool:
-    return isinstance(value, (int, np.integer)) and not isinstance(value, bool)
 
 
 @dataclass(frozen=True)
@@ -296,5 +288,14 @@ def interpolate(
         except SingularSystemError as exc:
             warnings.warn(f"{name}: skipping the {model.kind} variogram: {exc}", PmapWarning, stacklevel=2)
             continue
+        if model.range >= 0.999 * _MAX_RANGE_FACTOR * emp.cutoff:
+            warnings.warn(
+                f"{name}: the fitted {model.kind} range reached its upper bound "
+                f"({model.range:.0f} m, {_MAX_RANGE_FACTOR:g} x the cutoff): the variogram keeps "
+                "rising within the cutoff, as a trend across the field does; the map is still "
+                "an interpolation of the samples, but read its variance with care",
+                PmapWarning,
+                stacklevel=2,
+            )
         return Interpolation(name, log, emp, model, candidates, result, cv)
     raise ModelFitError(f"{name}: every fitted variogram model gives a singular kriging system")

@@ -1,20 +1,10 @@
 """Read a lab's sample table into checked arrays in a metric working CRS.
 
 Two steps: :func:`read_samples` reads a CSV, GeoJSON, GeoPackage or Shapefile, finds the
-columns, parses the messy values and validates them, keeping coordinates in the file's own
-CRS; :func:`to_working_crs` reprojects to the working CRS and merges samples that share a
+columns (:mod:`pmap.io.columns`), parses the messy values (:mod:`pmap.io.values`, which
+states the value rules) and validates them, keeping coordinates in the file's own CRS;
+:func:`to_working_crs` reprojects to the working CRS and merges samples that share a
 location.  :func:`load_samples` does both and is what the pipeline calls.
-
-Value rules (one place, so the docs can quote them):
-
-* surrounding blanks are stripped; ``n.d.``, ``nd``, ``na``, ``n/a``, ``nan``, ``-``,
-  ``--`` and empty cells are missing (NaN);
-* a decimal comma is read as a decimal point (``5,3`` = 5.3); where both ``.`` and ``,``
-  appear, the last one is the decimal mark; in a comma-separated file a quoted value like
-  ``1,234`` is read as a thousands separator (1234);
-* ``<5``-style values below detection become half the detection limit (2.5), with one
-  :class:`~pmap.errors.PmapWarning` per column (common practice, no source);
-* anything else that is not a number is an :class:`~pmap.errors.InputError`.
 
 Rows whose pH (or any other property) is missing are kept: each property is kriged from
 the samples where it is present.  Samples whose coordinates are missing are an error.
@@ -23,17 +13,25 @@ the samples where it is present.  Samples whose coordinates are missing are an e
 from __future__ import annotations
 
 import io
-import re
 import warnings
-from collections.abc import Iterable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
 import pandas as pd
 
-from pmap.errors import ConfigError, InputError, PmapWarning
+from pmap.errors import InputError, PmapWarning
+from pmap.io.columns import (
+    STP_METHODS,
+    SampleColumns,
+    find_coordinate_columns,
+    find_id_column,
+    find_property_columns,
+    stp_method_of,
+)
 from pmap.io.crs import is_projected_metres, normalise_crs, to_pyproj, utm_crs_for
+from pmap.io.values import ValueParser
 
 __all__ = [
     "STP_METHODS",
@@ -45,9 +43,6 @@ __all__ = [
     "to_working_crs",
     "load_samples",
 ]
-
-#: Soil-test P extraction methods pmap knows.
-STP_METHODS: tuple[str, ...] = ("mehlich3_icp", "mehlich3_colorimetric", "bray1", "olsen")
 
 #: Canonical property names with their units.
 SAMPLE_PROPERTIES: dict[str, str] = {
@@ -66,81 +61,9 @@ SAMPLE_PROPERTIES: dict[str, str] = {
 
 _VECTOR_SUFFIXES = {".geojson", ".json", ".gpkg", ".shp"}
 _CSV_SUFFIXES = {".csv", ".txt", ".tsv"}
-_MISSING = {"", "-", "--", "na", "n/a", "n.a.", "nd", "n.d.", "n.d", "nan", "null", "none"}
-_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
-_THOUSANDS = re.compile(r"[+-]?\d{1,3}(,\d{3})+")
 _MAX_FIELD_LAT = 80.0  # degrees; common practice, no source
-_MG_KG_SUFFIX = re.compile(r"_(ppm|mg_kg|mgkg|mg_per_kg|pct|percent)$")
-_LB_SUFFIX = re.compile(r"_(lbs?_?(ac|a|acre))$")
-
-# Compact (lower case, no separators, unit suffix removed) header names, in priority order.
-_LAT = ("latitude", "lat", "latdd", "latdeg")
-_LON = ("longitude", "lon", "long", "lng", "londd", "londeg")
-_X = ("x", "easting", "east", "xcoord", "utmx", "utme")
-_Y = ("y", "northing", "north", "ycoord", "utmy", "utmn")
-_ID = ("sampleid", "id", "sample", "sampleno", "samplenumber", "pointid", "labid", "name")
-_PH_WATER = ("ph", "phwater", "soilph", "phh2o", "waterph", "phw", "ph11")
-_PH_SALT = ("phsalt", "phcacl2", "phkcl", "saltph")
-_TOTAL_P = ("totalp", "tp", "ptotal", "totalphosphorus")
-_STP_NAMED = {
-    "mehlich3_colorimetric": ("m3pcol", "pm3col", "m3pcolorimetric", "pm3colorimetric",
-                              "mehlich3pcol", "mehlich3pcolorimetric"),
-    "mehlich3_icp": ("pm3", "mehlich3p", "m3p", "pmehlich3", "mehlich3", "mehlichp", "m3picp",
-                     "pm3icp", "mehlich3picp"),
-    "bray1": ("bray1p", "pbray", "pbray1", "brayp", "bray1", "brayp1"),
-    "olsen": ("olsenp", "polsen", "olsen"),
-}
-_STP_GENERIC = ("stp", "soiltestp", "availablep", "p")
-_OPTIONAL = {
-    "caco3": ("caco3", "carbonate", "calciumcarbonate"),
-    "clay": ("clay", "claycontent"),
-    "om": ("om", "organicmatter", "som", "soilom"),
-    "base_saturation": ("basesaturation", "basesat", "bs"),
-    "fe": ("fe", "iron"),
-    "al": ("al", "aluminium", "aluminum"),
-    "ca": ("ca", "calcium"),
-    "buffer_ph": ("bufferph", "bph", "phbuffer", "buffer"),
-}
 _PERCENT = ("caco3", "clay", "om", "base_saturation")
-
-
-def _meta(doc: str) -> dict[str, str]:
-    return {"unit": "", "doc": doc, "source": "common practice, no source"}
-
-
-@dataclass(frozen=True)
-class SampleColumns:
-    """Which columns of the samples file hold what (config section ``[samples]``).
-
-    Every column name left unset is found by matching common header names, ignoring case,
-    blanks, punctuation and a unit suffix such as ``_ppm`` or ``_mg_kg``.
-    """
-
-    x_column: str | None = field(default=None, metadata=_meta(
-        "column of easting (m) or, with a geographic CRS, longitude; unset: auto-detect "
-        "(longitude/lon/long/lng, x/easting/east)"))
-    y_column: str | None = field(default=None, metadata=_meta(
-        "column of northing (m) or latitude; unset: auto-detect (latitude/lat, y/northing/north)"))
-    id_column: str | None = field(default=None, metadata=_meta(
-        "column of sample identifiers; unset: auto-detect (sample_id, id, sample), else row numbers"))
-    ph_column: str | None = field(default=None, metadata=_meta(
-        "column of soil pH (water); unset: auto-detect (ph, ph_water, soil_ph, ph_h2o; "
-        "ph_salt/ph_cacl2 accepted with a warning)"))
-    total_p_column: str | None = field(default=None, metadata=_meta(
-        "column of total P (mg/kg); unset: auto-detect (total_p, tp, p_total, totalp)"))
-    stp_column: str | None = field(default=None, metadata=_meta(
-        "column of soil-test P (mg/kg); unset: auto-detect (p_m3, mehlich3_p, bray1_p, olsen_p, stp)"))
-    stp_method: str | None = field(default=None, metadata=_meta(
-        "soil-test P method: mehlich3_icp, mehlich3_colorimetric, bray1 or olsen; unset: "
-        "inferred from the column name"))
-
-    def __post_init__(self) -> None:
-        if self.stp_method is not None and self.stp_method not in STP_METHODS:
-            raise ConfigError(
-                f"samples.stp_method must be one of {', '.join(STP_METHODS)}, got {self.stp_method!r}"
-            )
-        if (self.x_column is None) != (self.y_column is None):
-            raise ConfigError("samples.x_column and samples.y_column must be set together")
+_DETECT_ALL = SampleColumns()  # every column auto-detected (frozen, so a safe default)
 
 
 @dataclass(frozen=True, eq=False)
@@ -230,7 +153,7 @@ class SampleTable:
 
 
 def read_samples(
-    path: str | Path, columns: SampleColumns = SampleColumns(), *, crs: str | None = None
+    path: str | Path, columns: SampleColumns = _DETECT_ALL, *, crs: str | None = None
 ) -> SourceSamples:
     """Read and validate a samples file, keeping coordinates in the file's CRS.
 
@@ -259,7 +182,7 @@ def read_samples(
     elif suffix in _CSV_SUFFIXES:
         frame, sep = _read_csv(path)
         rows = frame.index.to_numpy(dtype=np.int64) + 2
-        xy_names, source_crs = _coordinate_columns(path, frame, columns, crs)
+        xy_names, source_crs = find_coordinate_columns(path, frame, columns, crs)
         points = None
     else:
         raise InputError(
@@ -269,7 +192,7 @@ def read_samples(
     if len(frame) == 0:
         raise InputError(f"{path.name}: the samples file has no data rows")
 
-    parse = _ValueParser(path.name, rows, thousands_commas=(sep == ","))
+    parse = ValueParser(path.name, rows, thousands_commas=(sep == ","))
     if xy_names is not None:
         x = parse(frame[xy_names[0]], xy_names[0], allow_below=False)
         y = parse(frame[xy_names[1]], xy_names[1], allow_below=False)
@@ -284,14 +207,14 @@ def read_samples(
     if to_pyproj(source_crs).is_geographic:
         _check_lonlat(path.name, points, rows, xy_names or ("longitude", "latitude"))
 
-    found = _property_columns(path, frame, columns, exclude=set(xy_names or ()))
-    stp_method = _stp_method(path, found, columns)
+    found = find_property_columns(path, frame, columns, exclude=set(xy_names or ()))
+    stp_method = stp_method_of(path, found, columns)
     values = {}
     for name, column in found.items():
         values[name] = parse(frame[column], column, allow_below=True)
     _check_ranges(path.name, values, found, rows)
 
-    id_col = _id_column(path, frame, columns, exclude=set(found.values()) | set(xy_names or ()))
+    id_col = find_id_column(path, frame, columns, exclude=set(found.values()) | set(xy_names or ()))
     if id_col is None:
         ids = np.array([f"row{r}" for r in rows], dtype=str)
     else:
@@ -353,7 +276,7 @@ def to_working_crs(samples: SourceSamples, working_crs: str | None = None) -> Sa
 
 def load_samples(
     path: str | Path,
-    columns: SampleColumns = SampleColumns(),
+    columns: SampleColumns = _DETECT_ALL,
     *,
     input_crs: str | None = None,
     working_crs: str | None = None,
@@ -443,252 +366,6 @@ def _read_vector(path: Path, crs: str | None):
     frame = pd.DataFrame(gdf.drop(columns=gdf.geometry.name))
     frame.columns = [str(c).strip() for c in frame.columns]
     return frame.reset_index(drop=True), points, source_crs, rows, "vector"
-
-
-def _compact(name: str) -> tuple[str, bool]:
-    """Compact form of a header and whether it carries a lb/acre unit suffix."""
-    s = str(name).strip().lower().replace("%", "_pct").replace("µ", "u")
-    s = re.sub(r"[^0-9a-z]+", "_", s).strip("_")
-    is_lb = bool(_LB_SUFFIX.search(s))
-    s = _LB_SUFFIX.sub("", s)
-    s = _MG_KG_SUFFIX.sub("", s)
-    return s.replace("_", ""), is_lb
-
-
-def _find(frame: pd.DataFrame, candidates: Sequence[str], exclude: Iterable[str] = ()) -> str | None:
-    excluded = set(exclude)
-    compact = {c: _compact(c)[0] for c in frame.columns if c not in excluded}
-    for cand in candidates:
-        for col, key in compact.items():
-            if key == cand:
-                return col
-    return None
-
-
-def _named(path: Path, frame: pd.DataFrame, name: str, key: str) -> str:
-    """The column the user named in the config (exact, then case- and blank-insensitive)."""
-    if name in frame.columns:
-        return name
-    for col in frame.columns:
-        if col.strip().lower() == name.strip().lower():
-            return col
-    raise InputError(f"{path.name}: samples.{key} = {name!r} is not a column; columns are: "
-                     f"{_columns_text(frame)}")
-
-
-def _columns_text(frame: pd.DataFrame) -> str:
-    return ", ".join(str(c) for c in frame.columns)
-
-
-def _coordinate_columns(path: Path, frame: pd.DataFrame, columns: SampleColumns,
-                        crs: str | None) -> tuple[tuple[str, str], str]:
-    if columns.x_column is not None and columns.y_column is not None:
-        xy = (_named(path, frame, columns.x_column, "x_column"),
-              _named(path, frame, columns.y_column, "y_column"))
-        if crs is not None:
-            return xy, normalise_crs(crs)
-        if _compact(xy[0])[0] in _LON and _compact(xy[1])[0] in _LAT:
-            return xy, "EPSG:4326"
-        return xy, _no_crs(path, frame, xy)
-    lon, lat = _find(frame, _LON), _find(frame, _LAT)
-    if lon is not None and lat is not None:
-        return (lon, lat), "EPSG:4326"
-    x, y = _find(frame, _X), _find(frame, _Y)
-    if x is not None and y is not None:
-        if crs is None:
-            return (x, y), _no_crs(path, frame, (x, y))
-        return (x, y), normalise_crs(crs)
-    raise InputError(
-        f"{path.name}: no coordinate columns found (columns: {_columns_text(frame)}): name them "
-        "lat/lon or x/y, or set samples.x_column and samples.y_column"
-    )
-
-
-def _no_crs(path: Path, frame: pd.DataFrame, xy: tuple[str, str]) -> str:
-    hint = ""
-    x = pd.to_numeric(frame[xy[0]].str.replace(",", ".", regex=False), errors="coerce")
-    y = pd.to_numeric(frame[xy[1]].str.replace(",", ".", regex=False), errors="coerce")
-    if x.notna().any() and (x.abs() <= 180).all() and (y.abs() <= 90).all():
-        hint = " (the values look like degrees: then pass --crs EPSG:4326)"
-    raise InputError(
-        f"{path.name} has projected x/y columns ({xy[0]}, {xy[1]}) but no CRS: pass --crs "
-        f"EPSG:NNNN or set grid.crs{hint}"
-    )
-
-
-def _property_columns(path: Path, frame: pd.DataFrame, columns: SampleColumns,
-                      exclude: set[str]) -> dict[str, str]:
-    found: dict[str, str] = {}
-    taken = set(exclude)
-
-    def claim(key: str, col: str | None) -> None:
-        if col is not None:
-            found[key] = col
-            taken.add(col)
-
-    if columns.ph_column is not None:
-        claim("ph", _named(path, frame, columns.ph_column, "ph_column"))
-        if _compact(found["ph"])[0] in _PH_SALT:
-            _warn_salt(path, found["ph"])
-    else:
-        claim("ph", _find(frame, _PH_WATER, taken))
-        if "ph" not in found:
-            claim("ph", _find(frame, _PH_SALT, taken))
-            if "ph" in found:
-                _warn_salt(path, found["ph"])
-    if "ph" not in found:
-        raise InputError(
-            f"{path.name}: no pH column found (columns: {_columns_text(frame)}): name it ph or "
-            "ph_water, or set samples.ph_column"
-        )
-    if columns.total_p_column is not None:
-        claim("total_p", _named(path, frame, columns.total_p_column, "total_p_column"))
-    else:
-        claim("total_p", _find(frame, _TOTAL_P, taken))
-    if columns.stp_column is not None:
-        claim("stp", _named(path, frame, columns.stp_column, "stp_column"))
-    else:
-        claim("stp", _auto_stp(path, frame, columns, taken))
-    if "total_p" not in found and "stp" not in found:
-        raise InputError(
-            f"{path.name}: no phosphorus column found (columns: {_columns_text(frame)}): name "
-            "total P total_p (mg/kg) and/or soil-test P e.g. p_m3, bray1_p, olsen_p, or set "
-            "samples.total_p_column / samples.stp_column"
-        )
-    for key, names in _OPTIONAL.items():
-        claim(key, _find(frame, names, taken))
-    for key, col in found.items():
-        if _compact(col)[1]:
-            raise InputError(
-                f"{path.name}: column {col!r} ({key}) looks like lb/acre; pmap reads P and "
-                "nutrients in mg/kg (ppm): convert the column (lb/acre / 2 for a 2-million-lb "
-                "furrow slice) and rename it"
-            )
-    return found
-
-
-def _warn_salt(path: Path, col: str) -> None:
-    warnings.warn(
-        f"{path.name}: using salt pH column {col!r} as pH; pmap's pH thresholds assume water pH "
-        "(salt pH reads lower), so classes near a threshold may shift",
-        PmapWarning, stacklevel=4,
-    )
-
-
-def _auto_stp(path: Path, frame: pd.DataFrame, columns: SampleColumns, taken: set[str]) -> str | None:
-    hits = {m: _find(frame, names, taken) for m, names in _STP_NAMED.items()}
-    hits = {m: c for m, c in hits.items() if c is not None}
-    if columns.stp_method is not None and columns.stp_method in hits:
-        return hits[columns.stp_method]
-    if len(hits) > 1:
-        raise InputError(
-            f"{path.name}: several soil-test P columns ({', '.join(hits.values())}): set "
-            "samples.stp_column (and samples.stp_method) to choose one"
-        )
-    if hits:
-        return next(iter(hits.values()))
-    return _find(frame, _STP_GENERIC, taken)
-
-
-def _infer_method(col: str) -> str | None:
-    key = _compact(col)[0]
-    for method, names in _STP_NAMED.items():
-        if key in names:
-            return method
-    if "mehlich" in key or "m3" in key:
-        return "mehlich3_colorimetric" if "col" in key else "mehlich3_icp"
-    if "bray1" in key or key.startswith("bray") and "2" not in key:
-        return "bray1"
-    if "olsen" in key:
-        return "olsen"
-    return None
-
-
-def _stp_method(path: Path, found: dict[str, str], columns: SampleColumns) -> str | None:
-    if "stp" not in found:
-        return columns.stp_method
-    if columns.stp_method is not None:
-        return columns.stp_method
-    method = _infer_method(found["stp"])
-    if method is None:
-        raise InputError(
-            f"{path.name}: cannot tell the soil-test P method of column {found['stp']!r}: set "
-            f"samples.stp_method to one of {', '.join(STP_METHODS)}"
-        )
-    return method
-
-
-def _id_column(path: Path, frame: pd.DataFrame, columns: SampleColumns, exclude: set[str]) -> str | None:
-    if columns.id_column is not None:
-        return _named(path, frame, columns.id_column, "id_column")
-    return _find(frame, _ID, exclude)
-
-
-class _ValueParser:
-    """Turns one column of messy lab values into float64, following the module rules."""
-
-    def __init__(self, file_name: str, rows: np.ndarray, *, thousands_commas: bool) -> None:
-        self.file_name = file_name
-        self.rows = rows
-        self.thousands_commas = thousands_commas
-
-    def __call__(self, series: pd.Series, column: str, *, allow_below: bool) -> np.ndarray:
-        if pd.api.types.is_numeric_dtype(series) and not pd.api.types.is_bool_dtype(series):
-            return series.to_numpy(dtype=np.float64, na_value=np.nan)
-        out = np.full(len(series), np.nan)
-        bad: list[tuple[int, str]] = []
-        below: list[str] = []
-        for i, raw in enumerate(series.tolist()):
-            if raw is None or (isinstance(raw, float) and np.isnan(raw)):
-                continue
-            if isinstance(raw, (int, float)) and not isinstance(raw, bool):
-                out[i] = float(raw)
-                continue
-            text = str(raw).strip()
-            if text.lower() in _MISSING:
-                continue
-            if allow_below and text.startswith("<"):
-                limit = self._number(text[1:].strip())
-                if limit is not None and limit >= 0:
-                    out[i] = limit / 2.0
-                    below.append(text)
-                    continue
-            value = self._number(text)
-            if value is None:
-                bad.append((int(self.rows[i]), text))
-            else:
-                out[i] = value
-        if bad:
-            shown = ", ".join(f"{r} ({v!r})" for r, v in bad[:5])
-            more = f" and {len(bad) - 5} more" if len(bad) > 5 else ""
-            raise InputError(
-                f"{self.file_name}: column {column!r} has values that are not numbers in rows "
-                f"{shown}{more}: correct them, or write n.d. for a missing value"
-            )
-        if below:
-            warnings.warn(
-                f"{self.file_name}: {len(below)} value(s) in column {column!r} were below "
-                f"detection (e.g. {below[0]!r}); each was replaced by half its detection limit",
-                PmapWarning, stacklevel=3,
-            )
-        return out
-
-    def _number(self, text: str) -> float | None:
-        if "," in text:
-            if "." in text:
-                if text.rfind(",") > text.rfind("."):
-                    text = text.replace(".", "").replace(",", ".")
-                else:
-                    text = text.replace(",", "")
-            elif self.thousands_commas and _THOUSANDS.fullmatch(text):
-                text = text.replace(",", "")
-            elif text.count(",") == 1:
-                text = text.replace(",", ".")
-            else:
-                text = text.replace(",", "")
-        if not _NUMBER.fullmatch(text):
-            return None
-        return float(text)
 
 
 def _rows_text(rows: np.ndarray, limit: int = 5) -> str:

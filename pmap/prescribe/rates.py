@@ -11,6 +11,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike
 
+from pmap._checks import check_choice, check_number, require
 from pmap.errors import ConfigError
 from pmap.soil.conversions import SOIL_TEST_METHODS, lb_acre_to_kg_ha
 
@@ -149,49 +150,24 @@ class RateRule:
                     f"rates.crop must be one of {', '.join(CROP_REMOVAL_LB_P2O5_PER_BU)} "
                     f"or rates.removal_lb_p2o5_per_bu must be set, got crop {self.crop!r}"
                 )
-        elif not self.removal_lb_p2o5_per_bu >= 0:
-            raise ConfigError(
-                f"rates.removal_lb_p2o5_per_bu must be >= 0, got {self.removal_lb_p2o5_per_bu}"
-            )
-        if self.soil_test_method not in SOIL_TEST_METHODS:
-            raise ConfigError(
-                f"rates.soil_test_method must be one of {', '.join(SOIL_TEST_METHODS)}, "
-                f"got {self.soil_test_method!r}"
-            )
-        if not self.yield_goal >= 0:
-            raise ConfigError(f"rates.yield_goal must be >= 0, got {self.yield_goal}")
-        if not self.critical_ppm > 0:
-            raise ConfigError(f"rates.critical_ppm must be > 0, got {self.critical_ppm}")
-        if not self.maintenance_limit_ppm > self.critical_ppm:
-            raise ConfigError(
-                f"rates.maintenance_limit_ppm must exceed rates.critical_ppm "
-                f"({self.critical_ppm}), got {self.maintenance_limit_ppm}"
-            )
-        if not self.buildup_lb_p2o5_per_acre_per_ppm >= 0:
-            raise ConfigError(
-                "rates.buildup_lb_p2o5_per_acre_per_ppm must be >= 0, got "
-                f"{self.buildup_lb_p2o5_per_acre_per_ppm}"
-            )
-        if isinstance(self.years_to_build, bool) or int(self.years_to_build) != self.years_to_build:
-            raise ConfigError(
-                f"rates.years_to_build must be a whole number, got {self.years_to_build}"
-            )
-        if self.years_to_build < 1:
-            raise ConfigError(f"rates.years_to_build must be >= 1, got {self.years_to_build}")
-        if self.product not in PRODUCT_P2O5_FRACTION:
-            raise ConfigError(
-                f"rates.product must be one of {', '.join(PRODUCT_P2O5_FRACTION)}, "
-                f"got {self.product!r}"
-            )
-        if not self.increment_kg_ha >= 0:
-            raise ConfigError(f"rates.increment_kg_ha must be >= 0, got {self.increment_kg_ha}")
-        if not self.min_rate_kg_ha >= 0:
-            raise ConfigError(f"rates.min_rate_kg_ha must be >= 0, got {self.min_rate_kg_ha}")
-        if not self.max_rate_kg_ha > self.min_rate_kg_ha:
-            raise ConfigError(
-                f"rates.max_rate_kg_ha must exceed rates.min_rate_kg_ha "
-                f"({self.min_rate_kg_ha}), got {self.max_rate_kg_ha}"
-            )
+        else:
+            check_number("rates.removal_lb_p2o5_per_bu", self.removal_lb_p2o5_per_bu, ge=0)
+        check_choice("rates.soil_test_method", self.soil_test_method, SOIL_TEST_METHODS)
+        check_number("rates.yield_goal", self.yield_goal, ge=0)
+        check_number("rates.critical_ppm", self.critical_ppm, gt=0)
+        require(self.maintenance_limit_ppm > self.critical_ppm, "rates.maintenance_limit_ppm",
+                f"exceed rates.critical_ppm ({self.critical_ppm})", self.maintenance_limit_ppm)
+        check_number("rates.buildup_lb_p2o5_per_acre_per_ppm",
+                     self.buildup_lb_p2o5_per_acre_per_ppm, ge=0)
+        years = self.years_to_build
+        require(not isinstance(years, bool) and int(years) == years, "rates.years_to_build",
+                "be a whole number", years)
+        check_number("rates.years_to_build", years, ge=1)
+        check_choice("rates.product", self.product, PRODUCT_P2O5_FRACTION)
+        check_number("rates.increment_kg_ha", self.increment_kg_ha, ge=0)
+        check_number("rates.min_rate_kg_ha", self.min_rate_kg_ha, ge=0)
+        require(self.max_rate_kg_ha > self.min_rate_kg_ha, "rates.max_rate_kg_ha",
+                f"exceed rates.min_rate_kg_ha ({self.min_rate_kg_ha})", self.max_rate_kg_ha)
         if self.increment_kg_ha > self.max_rate_kg_ha:
             raise ConfigError(
                 f"rates.increment_kg_ha ({self.increment_kg_ha}) must not exceed "

@@ -16,6 +16,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy import ndimage
 
+from pmap._checks import check_number
 from pmap.errors import ConfigError, InputError
 from pmap.soil.conversions import SOIL_TEST_METHODS
 
@@ -102,10 +103,7 @@ class ZoneParams:
                 f"zones.labels needs {n_classes} names (one more than the breaks), "
                 f"got {len(self.labels)}"
             )
-        if not self.min_mapping_unit_ha >= 0:
-            raise ConfigError(
-                f"zones.min_mapping_unit_ha must be >= 0, got {self.min_mapping_unit_ha}"
-            )
+        check_number("zones.min_mapping_unit_ha", self.min_mapping_unit_ha, ge=0)
 
 
 def class_breaks_for(params: ZoneParams, method: str) -> tuple[float, ...]:

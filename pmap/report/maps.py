@@ -15,6 +15,7 @@ from __future__ import annotations
 import math
 import os
 import tempfile
+import textwrap
 from collections.abc import Callable, Mapping
 from pathlib import Path
 
@@ -55,6 +56,7 @@ def plot_layer(
     cmap: str = "viridis",
     vmin: float | None = None,
     vmax: float | None = None,
+    footnote: str = "",
 ) -> Path:
     """Draw one raster layer as a PNG map (150 dpi, 7 x 6 in).
 
@@ -83,6 +85,8 @@ def plot_layer(
         Colour map for continuous layers (viridis, cividis, magma, ...).
     vmin, vmax : float, optional
         Colour range; default the data range.
+    footnote : str
+        Small print under the map (e.g. the cautions on a rate map).
 
     Returns
     -------
@@ -145,13 +149,16 @@ def plot_layer(
     ax.text(0.99, 0.01, _crs_note(grid), transform=ax.transAxes, ha="right", va="bottom",
             fontsize=6.5, color="0.2", bbox={"facecolor": "white", "alpha": 0.7, "edgecolor": "none"})
     fig.suptitle(title, x=0.02, ha="left", fontsize=13, fontweight="bold")
+    if footnote:
+        ax.set_xlabel(textwrap.fill(footnote, 105), fontsize=6.5, color="0.25")
     if subtitle:
         ax.set_title(subtitle, loc="left", fontsize=9, color="0.3")
     if handles:
         legend_title = unit if classes is not None else None
-        fig.legend(handles=handles, loc="outside lower center" if classes is None else "outside right upper",
-                   ncols=len(handles) if classes is None else 1, fontsize=8, title=legend_title,
-                   frameon=False)
+        # Below the map, so that long class labels never squeeze it.
+        fig.legend(handles=handles, loc="outside lower center",
+                   ncols=len(handles) if classes is None else min(3, len(handles)), fontsize=8,
+                   title=legend_title, frameon=False)
     return _save(fig, path_png)
 
 

@@ -27,6 +27,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 from scipy.optimize import least_squares, minimize_scalar
 
+from pmap._checks import check_choice, check_number
 from pmap.errors import ConfigError, InputError, InsufficientDataError, ModelFitError
 from pmap.soil.sorption import psp_highly_weathered, psp_moderately_weathered
 
@@ -168,24 +169,16 @@ class PartitionParams:
     )
 
     def __post_init__(self) -> None:
-        if self.weathering not in WEATHERING_CLASSES:
-            raise ConfigError(
-                f"soil.weathering must be one of {', '.join(WEATHERING_CLASSES)}, "
-                f"got {self.weathering!r}"
-            )
+        check_choice("soil.weathering", self.weathering, WEATHERING_CLASSES)
         for key in ("acid_midpoint_ph", "alkaline_midpoint_ph"):
-            value = getattr(self, key)
-            if not 2.0 <= value <= 12.0:
-                raise ConfigError(f"soil.{key} must lie in [2, 12], got {value}")
+            check_number(f"soil.{key}", getattr(self, key), ge=2, le=12)
         if self.acid_midpoint_ph >= self.alkaline_midpoint_ph:
             raise ConfigError(
                 "soil.acid_midpoint_ph must be below soil.alkaline_midpoint_ph, got "
                 f"{self.acid_midpoint_ph} and {self.alkaline_midpoint_ph}"
             )
         for key in ("acid_width_ph", "alkaline_width_ph"):
-            value = getattr(self, key)
-            if not value > 0:
-                raise ConfigError(f"soil.{key} must be > 0, got {value}")
+            check_number(f"soil.{key}", getattr(self, key), gt=0)
         for key in (
             "max_labile_fraction",
             "occluded_fraction_slight",
@@ -193,24 +186,13 @@ class PartitionParams:
             "occluded_fraction_high",
             "max_occluded_fraction",
         ):
-            value = getattr(self, key)
-            if not 0.0 <= value <= 1.0:
-                raise ConfigError(f"soil.{key} must lie in [0, 1], got {value}")
-        if self.max_labile_fraction <= 0:
-            raise ConfigError(
-                f"soil.max_labile_fraction must be > 0, got {self.max_labile_fraction}"
-            )
+            check_number(f"soil.{key}", getattr(self, key), ge=0, le=1)
+        check_number("soil.max_labile_fraction", self.max_labile_fraction, gt=0)
         for key in ("caco3_strength_per_pct", "default_caco3_pct"):
-            value = getattr(self, key)
-            if not value >= 0:
-                raise ConfigError(f"soil.{key} must be >= 0, got {value}")
-        if not self.default_clay_pct > 0:
-            raise ConfigError(f"soil.default_clay_pct must be > 0, got {self.default_clay_pct}")
-        if not 0 < self.default_base_saturation_pct <= 100:
-            raise ConfigError(
-                "soil.default_base_saturation_pct must lie in (0, 100], got "
-                f"{self.default_base_saturation_pct}"
-            )
+            check_number(f"soil.{key}", getattr(self, key), ge=0)
+        check_number("soil.default_clay_pct", self.default_clay_pct, gt=0)
+        check_number("soil.default_base_saturation_pct", self.default_base_saturation_pct,
+                     gt=0, le=100)
 
     @property
     def base_occluded_fraction(self) -> float:

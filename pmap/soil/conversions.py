@@ -13,7 +13,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike
 
-from pmap.errors import ConfigError
+from pmap._checks import check_choice, check_number
 
 __all__ = [
     "P_MOLAR_MASS",
@@ -147,11 +147,6 @@ def mehlich3_from_olsen(
     return (_f(olsen) + offset) * divisor
 
 
-def _check_method(method: str, key: str) -> None:
-    if method not in SOIL_TEST_METHODS:
-        raise ConfigError(f"{key} must be one of {', '.join(SOIL_TEST_METHODS)}, got {method!r}")
-
-
 def convert_soil_test(values: ArrayLike, from_method: str, to_method: str) -> np.ndarray:
     """Convert soil-test P between methods with the default regional regressions.
 
@@ -172,8 +167,8 @@ def convert_soil_test(values: ArrayLike, from_method: str, to_method: str) -> np
         Soil-test P in ``to_method`` (mg/kg).  Results of the regressions below 0 are
         returned as 0.
     """
-    _check_method(from_method, "from_method")
-    _check_method(to_method, "to_method")
+    check_choice("from_method", from_method, SOIL_TEST_METHODS)
+    check_choice("to_method", to_method, SOIL_TEST_METHODS)
     x = _f(values)
     if from_method == to_method:
         return x.copy()
@@ -227,13 +222,9 @@ class SoilTestEquivalent:
     )
 
     def __post_init__(self) -> None:
-        _check_method(self.method, "soil_test_equivalent.method")
-        if not np.isfinite(self.intercept):
-            raise ConfigError(
-                f"soil_test_equivalent.intercept must be finite, got {self.intercept}"
-            )
-        if not (np.isfinite(self.slope) and self.slope > 0):
-            raise ConfigError(f"soil_test_equivalent.slope must be > 0, got {self.slope}")
+        check_choice("soil_test_equivalent.method", self.method, SOIL_TEST_METHODS)
+        check_number("soil_test_equivalent.intercept", self.intercept, finite=True)
+        check_number("soil_test_equivalent.slope", self.slope, gt=0, finite=True)
 
     def to_soil_test(self, available_p: ArrayLike) -> np.ndarray:
         """Soil-test P equivalent (mg/kg, in :attr:`method`) of model-available P (mg/kg).

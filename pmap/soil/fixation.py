@@ -16,6 +16,7 @@ from dataclasses import dataclass, field
 import numpy as np
 from numpy.typing import ArrayLike
 
+from pmap._checks import check_number
 from pmap.errors import ConfigError
 from pmap.soil.availability import (
     PartitionParams,
@@ -85,10 +86,7 @@ class FixationParams:
                 f"fixation.class_breaks must satisfy 0 < low < high < 1, got {breaks}"
             )
         object.__setattr__(self, "class_breaks", (float(low), float(high)))
-        if not self.occlusion_dominance > 0:
-            raise ConfigError(
-                f"fixation.occlusion_dominance must be > 0, got {self.occlusion_dominance}"
-            )
+        check_number("fixation.occlusion_dominance", self.occlusion_dominance, gt=0)
 
 
 @dataclass(frozen=True)

@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import csv
 import json
-import os
 
 import numpy as np
 import pytest
@@ -13,16 +11,6 @@ from pmap.errors import ModelFitError
 from pmap.geostats.crossval import leave_one_out, loo_kriging
 from pmap.geostats.kriging import lognormal_ordinary_kriging, ordinary_kriging
 from pmap.geostats.variogram import VariogramModel, empirical_variogram, fit_variogram
-
-
-@pytest.fixture(scope="module")
-def meuse() -> tuple[np.ndarray, np.ndarray]:
-    skgstat = pytest.importorskip("skgstat")
-    path = os.path.join(os.path.dirname(skgstat.__file__), "data", "samples", "meuse.txt")
-    with open(path, newline="") as fh:
-        rows = list(csv.DictReader(fh))
-    coords = np.array([[float(r["x"]), float(r["y"])] for r in rows])
-    return coords, np.array([float(r["zinc"]) for r in rows])
 
 
 @pytest.fixture(scope="module")

@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import csv
 import json
-import os
 import warnings
 
 import numpy as np
@@ -18,16 +16,6 @@ from pmap.geostats.interpolate import (
     nugget_floor,
     sample_skewness,
 )
-
-
-@pytest.fixture(scope="module")
-def meuse() -> tuple[np.ndarray, np.ndarray]:
-    skgstat = pytest.importorskip("skgstat")
-    path = os.path.join(os.path.dirname(skgstat.__file__), "data", "samples", "meuse.txt")
-    with open(path, newline="") as fh:
-        rows = list(csv.DictReader(fh))
-    coords = np.array([[float(r["x"]), float(r["y"])] for r in rows])
-    return coords, np.array([float(r["zinc"]) for r in rows])
 
 
 def test_too_few_samples_message():

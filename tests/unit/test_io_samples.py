@@ -234,17 +234,47 @@ def test_missing_file():
         load_samples("/nonexistent/nowhere.csv")
 
 
-def test_missing_ph_column_lists_columns_and_config_key(tmp_path):
-    text = "id,lat,lon,total_p\na,40.1,-88.9,400\n"
-    with pytest.raises(InputError, match=r"noph\.csv: no pH column found \(columns: id, lat, lon, "
-                                         r"total_p\).*samples\.ph_column"):
-        load_samples(_write(tmp_path, "noph.csv", text))
+# A table the reader refuses: (file name, contents, pattern of the message), one case a row.
+REFUSED_TABLES = [
+    pytest.param("noph.csv", "id,lat,lon,total_p\na,40.1,-88.9,400\n",
+                 r"noph\.csv: no pH column found \(columns: id, lat, lon, total_p\).*samples\.ph_column",
+                 id="missing_ph_column_lists_columns_and_config_key"),
+    pytest.param("nop.csv", "id,lat,lon,ph,k\na,40.1,-88.9,6.0,120\n",
+                 r"nop\.csv: no phosphorus column.*samples\.total_p_column",
+                 id="missing_p_column"),
+    pytest.param("utm.csv", "id,lat,lon,ph,total_p\na,4440500,338000,6.0,400\n",
+                 r"latitude outside .*projected coordinates\? name the columns x/y",
+                 id="latitude_and_longitude_both_impossible"),
+    pytest.param("lon.csv", "id,lat,lon,ph,total_p\na,40.1,338000,6.0,400\n",
+                 r"lon\.csv: longitude outside -180\.\.180 in column 'lon'",
+                 id="longitude_out_of_range"),
+    pytest.param("nocoord.csv", "id,lat,lon,ph,total_p\na,40.1,-88.9,6.0,400\nb,,-88.9,6.0,400\n",
+                 r"nocoord\.csv: missing coordinates in rows 3",
+                 id="missing_coordinates"),
+    pytest.param("phr.csv", "id,lat,lon,ph,total_p\na,40.1,-88.9,6.0,400\nb,40.2,-88.9,6.1,400\n"
+                            "c,40.3,-88.9,61,400\n",
+                 r"phr\.csv: column 'ph' \(ph\) out of range in rows 4 \(61\)",
+                 id="ph_out_of_range_names_row_and_value"),
+    pytest.param("neg.csv", "id,lat,lon,ph,total_p,p_m3\na,40.1,-88.9,6.0,400,-3\n",
+                 r"neg\.csv: column 'p_m3' \(stp\) out of range in rows 2 \(-3\)",
+                 id="negative_p"),
+    pytest.param("xy.csv", "id,x,y,ph,total_p\na,338000,4440500,6.0,400\n",
+                 r"xy\.csv has projected x/y columns \(x, y\) but no CRS: "
+                 r"pass --crs EPSG:NNNN or set grid\.crs$",
+                 id="projected_xy_without_crs"),
+    pytest.param("deg.csv", "id,x,y,ph,total_p\na,-88.9,40.1,6.0,400\n",
+                 "look like degrees",
+                 id="xy_in_degrees_without_crs_gets_a_hint"),
+    pytest.param("lb.csv", "id,lat,lon,ph,P_M3_lb_ac\na,40.1,-88.9,6.0,40\n",
+                 "looks like lb/acre",
+                 id="lb_per_acre_column_is_refused"),
+]
 
 
-def test_missing_p_column(tmp_path):
-    text = "id,lat,lon,ph,k\na,40.1,-88.9,6.0,120\n"
-    with pytest.raises(InputError, match=r"nop\.csv: no phosphorus column.*samples\.total_p_column"):
-        load_samples(_write(tmp_path, "nop.csv", text))
+@pytest.mark.parametrize(("name", "text", "match"), REFUSED_TABLES)
+def test_refused_table_names_the_problem(tmp_path, name, text, match):
+    with pytest.raises(InputError, match=match):
+        load_samples(_write(tmp_path, name, text))
 
 
 @pytest.mark.parametrize(
@@ -257,49 +287,6 @@ def test_swapped_lat_lon(tmp_path, lat, lon):
     with pytest.raises(InputError, match=rf"swap\.csv: latitude outside -80\.\.80 .*'lat', rows "
                                          rf"2 \({lat:g}\).*look swapped"):
         load_samples(_write(tmp_path, "swap.csv", text))
-
-
-def test_latitude_and_longitude_both_impossible(tmp_path):
-    text = "id,lat,lon,ph,total_p\na,4440500,338000,6.0,400\n"
-    with pytest.raises(InputError, match=r"latitude outside .*projected coordinates\? name the columns x/y"):
-        load_samples(_write(tmp_path, "utm.csv", text))
-
-
-def test_longitude_out_of_range(tmp_path):
-    text = "id,lat,lon,ph,total_p\na,40.1,338000,6.0,400\n"
-    with pytest.raises(InputError, match=r"lon\.csv: longitude outside -180\.\.180 in column 'lon'"):
-        load_samples(_write(tmp_path, "lon.csv", text))
-
-
-def test_missing_coordinates(tmp_path):
-    text = "id,lat,lon,ph,total_p\na,40.1,-88.9,6.0,400\nb,,-88.9,6.0,400\n"
-    with pytest.raises(InputError, match=r"nocoord\.csv: missing coordinates in rows 3"):
-        load_samples(_write(tmp_path, "nocoord.csv", text))
-
-
-def test_ph_out_of_range_names_row_and_value(tmp_path):
-    text = "id,lat,lon,ph,total_p\na,40.1,-88.9,6.0,400\nb,40.2,-88.9,6.1,400\nc,40.3,-88.9,61,400\n"
-    with pytest.raises(InputError, match=r"phr\.csv: column 'ph' \(ph\) out of range in rows 4 \(61\)"):
-        load_samples(_write(tmp_path, "phr.csv", text))
-
-
-def test_negative_p(tmp_path):
-    text = "id,lat,lon,ph,total_p,p_m3\na,40.1,-88.9,6.0,400,-3\n"
-    with pytest.raises(InputError, match=r"neg\.csv: column 'p_m3' \(stp\) out of range in rows 2 \(-3\)"):
-        load_samples(_write(tmp_path, "neg.csv", text))
-
-
-def test_projected_xy_without_crs(tmp_path):
-    text = "id,x,y,ph,total_p\na,338000,4440500,6.0,400\n"
-    with pytest.raises(InputError, match=r"xy\.csv has projected x/y columns \(x, y\) but no CRS: "
-                                         r"pass --crs EPSG:NNNN or set grid\.crs$"):
-        load_samples(_write(tmp_path, "xy.csv", text))
-
-
-def test_xy_in_degrees_without_crs_gets_a_hint(tmp_path):
-    text = "id,x,y,ph,total_p\na,-88.9,40.1,6.0,400\n"
-    with pytest.raises(InputError, match="look like degrees"):
-        load_samples(_write(tmp_path, "deg.csv", text))
 
 
 def test_stp_method_not_inferable(tmp_path):
@@ -317,12 +304,6 @@ def test_several_stp_columns_need_a_choice(tmp_path):
         load_samples(path)
     table = _load(path, columns=SampleColumns(stp_method="bray1"))
     assert table.values["stp"][0] == 15
-
-
-def test_lb_per_acre_column_is_refused(tmp_path):
-    text = "id,lat,lon,ph,P_M3_lb_ac\na,40.1,-88.9,6.0,40\n"
-    with pytest.raises(InputError, match="looks like lb/acre"):
-        load_samples(_write(tmp_path, "lb.csv", text))
 
 
 def test_unknown_named_column(tmp_path):

@@ -9,6 +9,7 @@ import pytest
 
 NUMERIC_MODULES = [
     "pmap.grid",
+    "pmap._checks",
     "pmap.geostats",
     "pmap.geostats.variogram",
     "pmap.geostats.kriging",

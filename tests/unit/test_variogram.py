@@ -2,9 +2,7 @@
 
 from __future__ import annotations
 
-import csv
 import json
-import os
 
 import numpy as np
 import pytest
@@ -20,17 +18,6 @@ from pmap.geostats.variogram import (
     fit_variogram,
     weighted_sse,
 )
-
-
-@pytest.fixture(scope="module")
-def meuse() -> tuple[np.ndarray, np.ndarray]:
-    skgstat = pytest.importorskip("skgstat")
-    path = os.path.join(os.path.dirname(skgstat.__file__), "data", "samples", "meuse.txt")
-    with open(path, newline="") as fh:
-        rows = list(csv.DictReader(fh))
-    coords = np.array([[float(r["x"]), float(r["y"])] for r in rows])
-    zinc = np.array([float(r["zinc"]) for r in rows])
-    return coords, zinc
 
 
 def test_meuse_cutoff_and_first_bins(meuse):
