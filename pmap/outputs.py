@@ -288,10 +288,13 @@ def _summary(result, inputs, samples_path, boundary_path, config_path, copied, o
             for code, label in RISK_CLASS_LABELS.items()
         },
     }
-    available = {}
+    available: dict[str, Any] = {}
     if "available_p" in result.layers:
         for name in ("available_p", "fe_al_p", "ca_p", "occluded_p"):
             available[f"mean_{name}_mg_kg"] = float(np.nanmean(result.layers[name]))
+    else:
+        available["note"] = ("the samples hold no total P: available P and the P pools are not "
+                             "mapped; fixation risk comes from pH alone")
     return {
         "pmap_version": __version__,
         "created_utc": datetime.now(timezone.utc).replace(microsecond=0).isoformat(),

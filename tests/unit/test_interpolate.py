@@ -152,3 +152,17 @@ def test_lab_error_sets_the_least_nugget():
     assert nugget_floor("ph", values, False, settings) == pytest.approx(0.0025)
     assert nugget_floor("total_p", np.array([100.0, 300.0]), False, settings) == pytest.approx(100.0)
     assert nugget_floor("total_p", values, True, settings) == pytest.approx(np.log1p(0.05**2))
+
+
+def test_a_trend_that_never_levels_off_is_reported(meuse):
+    # A plane across the points: the variogram rises to the cutoff and beyond, so the fitted
+    # range sits on its bound; interpolate must say so. Meuse log(zinc) levels off (gstat's
+    # range 897 m, inside the bound) and must not warn.
+    coords, zinc = meuse
+    plane = 0.002 * coords[:, 0] + 0.001 * coords[:, 1]
+    settings = KrigingSettings(log_transform="never", models=("spherical",))
+    with pytest.warns(UserWarning, match="upper bound"):
+        interpolate("clay", coords, plane - plane.min() + 10.0, coords[:2] + 5.0, settings)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        interpolate("zinc", coords, np.log(zinc), coords[:2] + 5.0, settings)
