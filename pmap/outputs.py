@@ -234,7 +234,7 @@ def write_outputs(
         if len(polygons) != len(result.patches):
             raise RuntimeError("zone polygons and prescription patches disagree")
         frame = vectors.zone_frame(polygons, result.patches, grid.crs)
-        vectors.write_zone_polygons(tmp / "rate_zones.gpkg", polygons, result.patches, grid.crs)
+        vectors.write_geopackage(tmp / "rate_zones.gpkg", frame)
         outputs["rate_zones.gpkg"] = "rate-zone polygons (layer rate_zones) with class, area, rate"
         vectors.write_geojson_wgs84(tmp / "rate_zones.geojson", frame)
         outputs["rate_zones.geojson"] = "the same polygons in WGS84 GeoJSON"

@@ -31,20 +31,17 @@ from pmap.soil.availability import SoilPools, partition_total_p
 from pmap.soil.conversions import convert_soil_test
 from pmap.soil.fixation import FixationRisk, fixation_risk
 
-__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "PROPERTY_INFO"]
+__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "KRIGED_PROPERTIES"]
 
 log = logging.getLogger(__name__)
 
-#: Soil properties pmap kriges when present: name -> (title, unit, required).
-PROPERTY_INFO: dict[str, tuple[str, str, bool]] = {
-    "ph": ("Soil pH", "pH units", True),
-    "total_p": ("Total P", "mg/kg", False),
-    "stp": ("Soil-test P", "mg/kg", False),
-    "caco3": ("CaCO3", "%", False),
-    "clay": ("Clay", "%", False),
-    "base_saturation": ("Base saturation", "%", False),
-    "om": ("Organic matter", "%", False),
-}
+#: Sample properties pmap kriges when the samples hold them, in this order.
+KRIGED_PROPERTIES: tuple[str, ...] = (
+    "ph", "total_p", "stp", "caco3", "clay", "base_saturation", "om",
+)
+#: Properties whose map the job cannot do without when present: too few samples is an error.
+#: For the others it is a warning and the layer is left out.
+_ESSENTIAL = ("ph", "total_p", "stp")
 
 
 @dataclass(frozen=True)
@@ -113,7 +110,7 @@ def prepare_inputs(
 def _krige_properties(inputs: FieldInputs, config: FieldConfig) -> dict[str, Interpolation]:
     samples, targets = inputs.samples, inputs.grid.inside_coords()
     results: dict[str, Interpolation] = {}
-    for name, (_title, _unit, required) in PROPERTY_INFO.items():
+    for name in KRIGED_PROPERTIES:
         if name not in samples.values:
             continue
         values = samples.values[name]
@@ -123,10 +120,11 @@ def _krige_properties(inputs: FieldInputs, config: FieldConfig) -> dict[str, Int
                 name, samples.coords[ok], values[ok], targets, config.kriging
             )
         except InsufficientDataError as exc:
-            if required or name in ("total_p", "stp"):
+            if name in _ESSENTIAL:
                 raise InsufficientDataError(f"{samples.source}: {exc}") from exc
             warnings.warn(f"{samples.source}: {name} not mapped: {exc}", PmapWarning, stacklevel=2)
-        log.info("kriged %s from %d samples", name, int(ok.sum()))
+        else:
+            log.info("kriged %s from %d samples", name, int(ok.sum()))
     if "total_p" not in results and "stp" not in results:
         raise InputError(
             f"{samples.source}: neither a total P nor a soil-test P column was found; "

@@ -237,6 +237,14 @@ def stp_method_of(path: Path, found: dict[str, str], columns: SampleColumns) -> 
             f"{path.name}: cannot tell the soil-test P method of column {found['stp']!r}: set "
             f"samples.stp_method to one of {', '.join(STP_METHODS)}"
         )
+    if method == "mehlich3_icp" and "icp" not in found["stp"].lower():
+        warnings.warn(
+            f"{path.name}: column {found['stp']!r} read as Mehlich-3 P measured by ICP; if the "
+            "lab measured it colorimetrically, set samples.stp_method = "
+            "'mehlich3_colorimetric' (the class limits differ)",
+            PmapWarning,
+            stacklevel=3,
+        )
     return method
 
 

@@ -29,6 +29,7 @@ __all__ = [
     "zone_polygons",
     "zone_frame",
     "write_zone_polygons",
+    "write_geopackage",
     "write_shapefile",
     "write_geojson_wgs84",
 ]
@@ -154,7 +155,12 @@ def write_zone_polygons(path: str | Path, patches: Sequence[tuple[BaseGeometry, 
 
     See :func:`zone_frame` for ``attributes``.  Replaces ``path`` atomically.
     """
-    return _write_atomic(path, zone_frame(patches, attributes, crs), driver="GPKG", layer=layer)
+    return write_geopackage(path, zone_frame(patches, attributes, crs), layer=layer)
+
+
+def write_geopackage(path: str | Path, gdf, *, layer: str = "rate_zones") -> Path:
+    """Write a zone table (e.g. from :func:`zone_frame`) as a GeoPackage layer, atomically."""
+    return _write_atomic(path, gdf, driver="GPKG", layer=layer)
 
 
 def write_shapefile(path: str | Path, gdf) -> Path:
