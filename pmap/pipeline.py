@@ -26,7 +26,7 @@ from pmap.io import boundary as boundary_io
 from pmap.io.crs import is_projected_metres, normalise_crs, utm_crs_for
 from pmap.io.samples import SampleTable, load_samples
 from pmap.prescribe import rates as rate_rules
-from pmap.prescribe.zones import label_patches, make_zones, patch_means
+from pmap.prescribe.zones import label_patches, make_zones, patch_means, zone_statistics
 from pmap.soil.availability import SoilPools, partition_total_p
 from pmap.soil.conversions import convert_soil_test
 from pmap.soil.fixation import FixationRisk, fixation_risk
@@ -313,31 +313,32 @@ def _zone_table(
     avail2d: np.ndarray | None, grid: GridSpec, config: FieldConfig,
 ) -> tuple[list[dict[str, Any]], dict[str, Any]]:
     """Per-class table and field totals from the prescription patches."""
+    layers = {"stp": stp2d} if avail2d is None else {"stp": stp2d, "available_p": avail2d}
     table = []
-    for cls in sorted({p["class_id"] for p in patches}):
-        mine = [p for p in patches if p["class_id"] == cls]
-        area = sum(p["area_ha"] for p in mine)
-        in_class = zones == cls
+    for row in zone_statistics(zones, layers, grid.cell_area_ha, config.zones.labels):
+        mine = [p for p in patches if p["class_id"] == row["class_id"]]
+        p2o5_kg = sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine)
         table.append({
-            "class_id": cls,
-            "class_label": config.zones.labels[cls - 1],
+            "class_id": row["class_id"],
+            "class_label": row["label"],
             "n_patches": len(mine),
-            "area_ha": round(area, 3),
-            "mean_stp_mg_kg": round(float(np.nanmean(stp2d[in_class])), 2),
-            "mean_available_p_mg_kg": (round(float(np.nanmean(avail2d[in_class])), 2)
+            "area_ha": round(row["area_ha"], 3),
+            "mean_stp_mg_kg": round(row["stp_mean"], 2),
+            "mean_available_p_mg_kg": (round(row["available_p_mean"], 2)
                                        if avail2d is not None else None),
-            "p2o5_kg_ha": round(sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine) / area, 1),
-            "p2o5_total_kg": round(sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine), 1),
+            "p2o5_kg_ha": round(p2o5_kg / row["area_ha"], 1),
+            "p2o5_total_kg": round(p2o5_kg, 1),
             "product": config.rates.product,
             "product_total_kg": round(sum(p["product_total_kg"] for p in mine), 1),
         })
     area = grid.n_inside * grid.cell_area_ha
+    p2o5_total = sum(r["p2o5_total_kg"] for r in table)
     totals = {
         "area_ha": round(area, 3),
-        "p2o5_total_kg": round(sum(r["p2o5_total_kg"] for r in table), 1),
+        "p2o5_total_kg": round(p2o5_total, 1),
         "product": config.rates.product,
         "product_total_kg": round(sum(r["product_total_kg"] for r in table), 1),
-        "mean_p2o5_kg_ha": round(sum(r["p2o5_total_kg"] for r in table) / area, 1),
+        "mean_p2o5_kg_ha": round(p2o5_total / area, 1),
     }
     return table, totals
 

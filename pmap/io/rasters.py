@@ -16,6 +16,7 @@ from pathlib import Path
 import numpy as np
 from affine import Affine
 
+from pmap._version import __version__
 from pmap.grid import NODATA, GridSpec
 from pmap.io.crs import normalise_crs
 
@@ -26,15 +27,8 @@ CLASS_NODATA: int = 0
 
 
 def pmap_version() -> str:
-    """The installed pmap version, or the package's ``__version__`` when not installed."""
-    from importlib import metadata
-
-    try:
-        return metadata.version("pmap")
-    except metadata.PackageNotFoundError:
-        import pmap
-
-        return str(getattr(pmap, "__version__", "0+source"))
+    """The pmap version written into provenance tags."""
+    return __version__
 
 
 def class_colours(class_ids: list[int] | tuple[int, ...]) -> dict[int, tuple[int, int, int, int]]:
