@@ -19,6 +19,7 @@ from pmap.errors import (
     InputError,
     InsufficientDataError,
     ModelFitError,
+    OutputError,
     OutputExistsError,
     PmapError,
     PmapWarning,
@@ -44,6 +45,7 @@ __all__ = [
     "InsufficientDataError",
     "ModelFitError",
     "OutputExistsError",
+    "OutputError",
     "PmapWarning",
 ]
 

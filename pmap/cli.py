@@ -23,7 +23,9 @@ _EXIT_CODES = ((ConfigError, 2), (InputError, 3), (OutputExistsError, 4), (Model
 
 
 def _setup_logging(verbose: int, quiet: bool) -> None:
-    level = logging.WARNING if quiet else (logging.DEBUG if verbose > 1 else logging.INFO)
+    level = {0: logging.WARNING, 1: logging.INFO}.get(verbose, logging.DEBUG)
+    if quiet:
+        level = logging.ERROR
     handler = logging.StreamHandler(sys.stderr)
     handler.setFormatter(logging.Formatter("pmap: %(message)s"))
     root = logging.getLogger("pmap")
@@ -38,6 +40,9 @@ def _setup_logging(verbose: int, quiet: bool) -> None:
 
 
 def _report(result, out: Path) -> None:
+    click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
+    if click.get_current_context().find_root().params.get("quiet"):
+        return
     totals = result.totals
     click.echo(f"wrote {len(result.outputs)} outputs to {out}")
     click.echo(
@@ -52,7 +57,6 @@ def _report(result, out: Path) -> None:
             f"  {name:<15} {interp.model.kind:<11} cross-validation RMSE {cv.rmse:.3g}, "
             f"mean error {cv.mean_error:+.2g}, MSDR {cv.msdr:.2f}"
         )
-    click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
 
 
 def _run_safely(func, *args, **kwargs):
@@ -63,13 +67,17 @@ def _run_safely(func, *args, **kwargs):
         message = " ".join(str(exc).split())
         click.echo(f"pmap: error: {message}", err=True)
         sys.exit(code)
+    except OSError as exc:  # the disk, not the data: say so in one line, no traceback
+        click.echo(f"pmap: error: cannot read or write a file: {exc}", err=True)
+        sys.exit(1)
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="pmap (soil phosphorus maps)",
                       message="%(prog)s %(version)s")
 @click.option("-v", "--verbose", count=True, help="More progress messages (-vv for debugging).")
-@click.option("-q", "--quiet", is_flag=True, help="Only errors.")
+@click.option("-q", "--quiet", is_flag=True,
+              help="Only errors and the caution: no warnings, progress or report.")
 def cli(verbose: int, quiet: bool) -> None:
     """pmap: soil samples to phosphorus availability, fixation-risk, zone and P2O5 rate maps.
 

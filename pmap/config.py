@@ -18,8 +18,10 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pmap.errors import ConfigError
+from pmap._checks import check_number
+from pmap.errors import ConfigError, InputError
 from pmap.geostats.interpolate import KrigingSettings
+from pmap.io.crs import normalise_crs
 from pmap.io.samples import SampleColumns
 from pmap.prescribe.rates import RateRule
 from pmap.prescribe.zones import ZoneParams
@@ -35,14 +37,21 @@ else:  # pragma: no cover - exercised on Python 3.10 only
 __all__ = ["FieldInfo", "GridSettings", "FieldConfig", "load_config", "configuration_reference"]
 
 
+_RECORD = "common practice, no source"
+
+
 @dataclass(frozen=True)
 class FieldInfo:
     """Names and dates shown on maps and in the summary."""
 
-    name: str = field(default="field", metadata={"unit": "", "doc": "field name used in titles and the summary"})
-    farm: str = field(default="", metadata={"unit": "", "doc": "farm or client name"})
-    sampling_date: str = field(default="", metadata={"unit": "YYYY-MM-DD", "doc": "date the samples were taken"})
-    sampling_depth_cm: str = field(default="0-15", metadata={"unit": "cm", "doc": "sampling depth interval, for the record"})
+    name: str = field(default="field", metadata={
+        "unit": "", "doc": "field name used in titles and the summary", "source": _RECORD})
+    farm: str = field(default="", metadata={
+        "unit": "", "doc": "farm or client name", "source": _RECORD})
+    sampling_date: str = field(default="", metadata={
+        "unit": "YYYY-MM-DD", "doc": "date the samples were taken", "source": _RECORD})
+    sampling_depth_cm: str = field(default="0-15", metadata={
+        "unit": "cm", "doc": "sampling depth interval, for the record", "source": _RECORD})
 
 
 @dataclass(frozen=True)
@@ -51,28 +60,33 @@ class GridSettings:
 
     cell_size_m: float = field(
         default=5.0,
-        metadata={"unit": "m", "doc": "edge length of an output cell", "source": "common practice, no source"},
+        metadata={"unit": "m", "doc": "edge length of an output cell (1-100 m)",
+                  "source": "common practice, no source"},
     )
     crs: str | None = field(
         default=None,
         metadata={
             "unit": "",
-            "doc": "CRS of projected x/y sample columns and of the run (e.g. EPSG:32616); "
-            "unset: samples must be lat/lon or carry a CRS, and the run uses the field's UTM zone",
+            "doc": "CRS of projected x/y sample columns (and of a boundary file without one), "
+            "and the run's CRS if projected in metres (e.g. EPSG:32616); unset: samples must be "
+            "lat/lon or carry a CRS, and the run uses the field's UTM zone",
+            "source": "common practice, no source",
         },
     )
     sample_buffer_m: float = field(
         default=10.0,
-        metadata={"unit": "m", "doc": "samples up to this far outside the boundary are kept (GPS error)"},
+        metadata={"unit": "m", "doc": "samples up to this far outside the boundary are kept "
+                  "(GPS error)", "source": "common practice, no source"},
     )
 
     def __post_init__(self) -> None:
-        if not self.cell_size_m > 0:
-            raise ConfigError(f"grid.cell_size_m must be > 0 m, got {self.cell_size_m}")
-        if self.cell_size_m > 100:
-            raise ConfigError(f"grid.cell_size_m = {self.cell_size_m} m is too coarse for a field map; use 1-50 m")
-        if self.sample_buffer_m < 0:
-            raise ConfigError(f"grid.sample_buffer_m must be >= 0 m, got {self.sample_buffer_m}")
+        check_number("grid.cell_size_m", self.cell_size_m, gt=0, le=100)
+        check_number("grid.sample_buffer_m", self.sample_buffer_m, ge=0, finite=True)
+        if self.crs is not None:
+            try:
+                normalise_crs(self.crs)
+            except InputError as exc:
+                raise ConfigError(f"grid.crs: {exc}") from exc
 
 
 @dataclass(frozen=True)

@@ -14,6 +14,7 @@ __all__ = [
     "InsufficientDataError",
     "ModelFitError",
     "OutputExistsError",
+    "OutputError",
     "PmapWarning",
 ]
 
@@ -40,6 +41,10 @@ class ModelFitError(PmapError, RuntimeError):
 
 class OutputExistsError(PmapError, FileExistsError):
     """The output directory exists and is not empty, and overwriting was not asked for."""
+
+
+class OutputError(PmapError, OSError):
+    """The outputs cannot be written where they were asked for."""
 
 
 class PmapWarning(UserWarning):

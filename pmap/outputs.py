@@ -7,6 +7,7 @@ and an existing output directory is left as it was.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import os
 import shutil
@@ -20,6 +21,7 @@ import numpy as np
 
 from pmap._version import __version__
 from pmap.cautions import CAUTIONS, CAUTIONS_SHORT
+from pmap.errors import OutputError, OutputExistsError
 from pmap.io import rasters, vectors
 from pmap.prescribe.zones import CLASS_LABELS
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
@@ -27,7 +29,7 @@ from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
 if TYPE_CHECKING:
     from pmap.pipeline import FieldInputs, FieldResult
 
-__all__ = ["LAYERS", "LayerInfo", "write_outputs", "publish", "staging_dir"]
+__all__ = ["LAYERS", "LayerInfo", "check_output_dir", "write_outputs", "publish", "staging_dir"]
 
 
 @dataclass(frozen=True)
@@ -119,13 +121,71 @@ def staging_dir(out_dir: Path) -> Path:
     return tmp
 
 
+def check_output_dir(out_dir: Path, overwrite: bool, inputs: list[Path]) -> None:
+    """Refuse, before any work, an output directory pmap must not write or replace.
+
+    A non-empty directory is replaced only with ``overwrite`` and only when it holds a
+    previous pmap output (a ``summary.json`` written by pmap); a directory that holds one
+    of the run's inputs is never replaced.
+
+    Raises
+    ------
+    OutputExistsError
+        The directory exists and may not be replaced.
+    OutputError
+        The directory cannot be created or written.
+    """
+    out_dir = Path(out_dir)
+    if out_dir.exists() and not out_dir.is_dir():
+        raise OutputExistsError(f"output path {out_dir} exists and is not a directory")
+    target = out_dir.resolve()
+    for path in inputs:
+        if target == Path(path).resolve() or target in Path(path).resolve().parents:
+            raise OutputExistsError(
+                f"output directory {out_dir} holds the input {path}; write the outputs elsewhere"
+            )
+    if out_dir.is_dir() and any(out_dir.iterdir()):
+        if not overwrite:
+            raise OutputExistsError(
+                f"output directory {out_dir} exists and is not empty; choose another directory "
+                "or pass --overwrite (overwrite=True) to replace it"
+            )
+        if not _is_pmap_output(out_dir):
+            raise OutputExistsError(
+                f"output directory {out_dir} is not empty and holds no pmap summary.json; "
+                "--overwrite replaces only a previous pmap output: choose another directory"
+            )
+    parent = target.parent
+    while not parent.exists():
+        parent = parent.parent
+    if not parent.is_dir() or not os.access(parent, os.W_OK | os.X_OK):
+        raise OutputError(f"cannot create the output directory {out_dir}: {parent} is not a "
+                          "writable directory")
+
+
+def _is_pmap_output(directory: Path) -> bool:
+    try:
+        summary = json.loads((directory / "summary.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(summary, dict) and "pmap_version" in summary
+
+
 def publish(tmp: Path, out_dir: Path) -> None:
-    """Move a completed staging directory into place, replacing ``out_dir`` last."""
+    """Move a completed staging directory into place, replacing ``out_dir`` last.
+
+    If the final rename fails, the previous output is put back.
+    """
     old = None
     if out_dir.exists():
         old = out_dir.parent / f".{out_dir.name}.old-{uuid.uuid4().hex[:8]}"
         os.replace(out_dir, old)
-    os.replace(tmp, out_dir)
+    try:
+        os.replace(tmp, out_dir)
+    except OSError:
+        if old is not None:
+            os.replace(old, out_dir)
+        raise
     if old is not None:
         shutil.rmtree(old, ignore_errors=True)
 
@@ -320,8 +380,7 @@ def _summary(result, inputs, samples_path, boundary_path, config_path, copied, o
         "soil_model": available,
         "fixation": fixation,
         "soil_test_p_driving_rates": result.stp_source,
-        "rate_rule": {k: (list(v) if isinstance(v, tuple) else v)
-                      for k, v in result.config.as_dict()["rates"].items()},
+        "rate_rule": dataclasses.asdict(result.rule),
         "zones": result.zone_table,
         "totals": result.totals,
         "warnings": result.warnings,

@@ -19,13 +19,15 @@ from typing import Any
 import numpy as np
 
 from pmap.config import FieldConfig, load_config
-from pmap.errors import InputError, InsufficientDataError, OutputExistsError, PmapWarning
+from pmap.errors import ConfigError, InputError, InsufficientDataError, PmapWarning
 from pmap.geostats.interpolate import Interpolation, interpolate
 from pmap.grid import GridSpec
 from pmap.io import boundary as boundary_io
 from pmap.io.crs import is_projected_metres, normalise_crs, utm_crs_for
 from pmap.io.samples import SampleTable, load_samples
+from pmap.outputs import check_output_dir, write_outputs
 from pmap.prescribe import rates as rate_rules
+from pmap.prescribe.rates import RateRule, resolve_rule
 from pmap.prescribe.zones import label_patches, make_zones, patch_means, zone_statistics
 from pmap.soil.availability import SoilPools, partition_total_p
 from pmap.soil.conversions import convert_soil_test
@@ -68,6 +70,7 @@ class FieldResult:
     patches: list[dict[str, Any]]
     totals: dict[str, Any]
     stp_source: dict[str, Any]
+    rule: RateRule
     summary: dict[str, Any] = field(repr=False)
     outputs: dict[str, str] = field(default_factory=dict, repr=False)
     warnings: list[str] = field(default_factory=list)
@@ -81,9 +84,9 @@ def prepare_inputs(
     if user_crs and is_projected_metres(user_crs):
         working_crs = user_crs
     else:
-        lon, lat = boundary_io.boundary_lonlat_centroid(boundary_path)
+        lon, lat = boundary_io.boundary_lonlat_centroid(boundary_path, crs=user_crs)
         working_crs = utm_crs_for(lon, lat)
-    boundary = boundary_io.load_boundary(boundary_path, working_crs)
+    boundary = boundary_io.load_boundary(boundary_path, working_crs, crs=user_crs)
     samples = load_samples(samples_path, config.samples, input_crs=user_crs, working_crs=working_crs)
     n_read = len(samples.ids)
     inside = boundary_io.samples_inside(samples, boundary, buffer_m=config.grid.sample_buffer_m)
@@ -166,17 +169,19 @@ def run_field(
         config_path = config if config is not None else config_path
         config = load_config(config)
     out_dir = Path(out_dir)
-    _check_output_dir(out_dir, overwrite)
+    check_output_dir(out_dir, overwrite, [Path(samples), Path(boundary)]
+                     + ([Path(config_path)] if config_path else []))
 
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always", PmapWarning)
-        inputs = prepare_inputs(samples, boundary, config)
-        result = _compute(inputs, config, out_dir)
-    for w in caught:  # show them as usual, and keep pmap's own for the summary
-        warnings.showwarning(w.message, w.category, w.filename, w.lineno)
+    caught: list[warnings.WarningMessage] = []
+    try:
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always", PmapWarning)
+            inputs = prepare_inputs(samples, boundary, config)
+            result = _compute(inputs, config, out_dir)
+    finally:  # show them as usual, also when a stage fails: they often say why
+        for w in caught:
+            warnings.showwarning(w.message, w.category, w.filename, w.lineno)
     result.warnings = [str(w.message) for w in caught if issubclass(w.category, PmapWarning)]
-
-    from pmap.outputs import write_outputs
 
     write_outputs(result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
                   config_path=Path(config_path) if config_path else None)
@@ -187,27 +192,37 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     """Every stage between ingest and output: kriging, soil model, zones and rates."""
     grid = inputs.grid
     kriged = _krige_properties(inputs, config)
-
-    def layer(name: str) -> np.ndarray | None:
-        return kriged[name].result.estimate if name in kriged else None
+    estimates = _physical_estimates(kriged)
 
     # Soil model on the kriged layers.
-    soil_inputs = {"caco3_pct": layer("caco3"), "clay_pct": layer("clay"),
-                   "base_saturation_pct": layer("base_saturation")}
-    ph = kriged["ph"].result.estimate
+    soil_inputs = {"caco3_pct": estimates.get("caco3"), "clay_pct": estimates.get("clay"),
+                   "base_saturation_pct": estimates.get("base_saturation")}
+    ph = estimates["ph"]
     pools: SoilPools | None = None
-    if "total_p" in kriged:
-        pools = partition_total_p(ph, layer("total_p"), config.soil, **soil_inputs)
-    risk: FixationRisk = fixation_risk(ph, config.fixation, config.soil, **soil_inputs)
+    if "total_p" in estimates:
+        pools = partition_total_p(ph, estimates["total_p"], config.soil, **soil_inputs)
+    risk: FixationRisk = fixation_risk(
+        ph, config.fixation, config.soil, **soil_inputs,
+        labile_p_mg_kg=pools.available if pools is not None else None,
+    )
 
-    # The soil-test P that drives zones and rates.
-    stp, method, stp_source = _rate_driver(kriged, pools, inputs.samples.stp_method, config)
+    # The soil-test P that drives zones and rates, and the rule for its method.
+    stp, method, stp_source = _rate_driver(estimates, pools, inputs.samples.stp_method, config)
+    rule = resolve_rule(config.rates, method)
     rule_stp = stp
-    if method != config.rates.soil_test_method:
-        rule_stp = convert_soil_test(stp, method, config.rates.soil_test_method)
+    if rule.soil_test_method != method:
+        if "olsen" in (method, rule.soil_test_method):
+            raise ConfigError(
+                f"rates.soil_test_method is {rule.soil_test_method} but the soil-test P is "
+                f"{method}: pmap does not convert Olsen values for the rate rule (the published "
+                "regression gives implausible values at common levels); leave "
+                "rates.soil_test_method unset and give Olsen-based rates.critical_ppm and "
+                "rates.maintenance_limit_ppm"
+            )
+        rule_stp = convert_soil_test(stp, method, rule.soil_test_method)
         stp_source["rule_conversion"] = (
             f"rates.critical_ppm and rates.maintenance_limit_ppm refer to "
-            f"{config.rates.soil_test_method}; {method} values were converted with "
+            f"{rule.soil_test_method}; {method} values were converted with "
             "pmap.soil.conversions.convert_soil_test (regional regressions, see docs)"
         )
         warnings.warn(stp_source["rule_conversion"], PmapWarning, stacklevel=2)
@@ -215,11 +230,11 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     # Zones and rates.
     stp2d = grid.fill(stp)
     zones = make_zones(stp2d, grid.mask, grid.cell_area_ha, config.zones, method)
-    rate_cells = rate_rules.p2o5_rate_kg_ha(rule_stp, config.rates)
+    rate_cells = rate_rules.p2o5_rate_kg_ha(rule_stp, rule)
 
     layers: dict[str, np.ndarray] = {}
     for name, interp in kriged.items():
-        layers[name] = grid.fill(interp.result.estimate)
+        layers[name] = grid.fill(estimates[name])
         layers[f"{name}_variance"] = grid.fill(interp.result.variance)
     if pools is not None:
         layers["available_p"] = grid.fill(pools.available)
@@ -236,7 +251,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
 
     avail2d = layers.get("available_p")
     patches, labels = _prescription_patches(zones, stp2d, grid.fill(rule_stp), avail2d, grid,
-                                            config)
+                                            config, rule)
     zone_rates = np.array([np.nan] + [p["p2o5_kg_ha"] for p in patches])
     layers["p2o5_zone_rate"] = zone_rates[labels]
     zone_table, totals = _zone_table(patches, zones, stp2d, avail2d, grid, config)
@@ -244,18 +259,45 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     return FieldResult(
         out_dir=out_dir, grid=grid, config=config, interpolations=kriged, layers=layers,
         zone_table=zone_table, patches=patches, totals=totals, stp_source=stp_source,
-        summary={},
+        rule=rule, summary={},
     )
 
 
+#: Physical limits of kriged properties; ordinary kriging can overshoot them near the edges
+#: of the data (e.g. CaCO3 below 0 % beside calcareous patches).
+_LIMITS: dict[str, tuple[float, float]] = {
+    "total_p": (0.0, np.inf), "stp": (0.0, np.inf), "caco3": (0.0, 100.0),
+    "clay": (0.0, 100.0), "base_saturation": (0.0, 100.0), "om": (0.0, 100.0),
+}
+
+
+def _physical_estimates(kriged: dict[str, Interpolation]) -> dict[str, np.ndarray]:
+    """Kriged estimates clipped to their physical range, with a warning where that bites."""
+    estimates = {}
+    for name, interp in kriged.items():
+        est = interp.result.estimate
+        if name in _LIMITS:
+            lo, hi = _LIMITS[name]
+            outside = int(np.count_nonzero((est < lo) | (est > hi)))
+            if outside:
+                warnings.warn(
+                    f"{name}: {outside} cell(s) kriged outside {lo:g}-{hi:g} were set to the "
+                    "limit (ordinary kriging can overshoot near extreme samples)",
+                    PmapWarning, stacklevel=3,
+                )
+                est = np.clip(est, lo, hi)
+        estimates[name] = est
+    return estimates
+
+
 def _rate_driver(
-    kriged: dict[str, Interpolation], pools: SoilPools | None, lab_method: str | None,
+    estimates: dict[str, np.ndarray], pools: SoilPools | None, lab_method: str | None,
     config: FieldConfig,
 ) -> tuple[np.ndarray, str, dict[str, Any]]:
     """The soil-test P per cell that drives zones and rates, its method and its provenance."""
-    if "stp" in kriged:
-        method = lab_method or config.rates.soil_test_method
-        return kriged["stp"].result.estimate, method, {
+    if "stp" in estimates:
+        method = lab_method or config.rates.soil_test_method or "mehlich3_icp"
+        return estimates["stp"], method, {
             "source": "measured", "method": method,
             "description": f"measured soil-test P ({method}), kriged",
         }
@@ -275,7 +317,7 @@ def _rate_driver(
 
 def _prescription_patches(
     zones: np.ndarray, stp2d: np.ndarray, rule_stp2d: np.ndarray, avail2d: np.ndarray | None,
-    grid: GridSpec, config: FieldConfig,
+    grid: GridSpec, config: FieldConfig, rule: RateRule,
 ) -> tuple[list[dict[str, Any]], np.ndarray]:
     """One prescription record per connected zone patch: its area, mean soil test and rate.
 
@@ -288,8 +330,8 @@ def _prescription_patches(
     mean_stp = patch_means(labels, stp2d)
     mean_avail = (patch_means(labels, avail2d) if avail2d is not None
                   else np.full(len(patch_class), np.nan))
-    rates = rate_rules.p2o5_rate_kg_ha(patch_means(labels, rule_stp2d), config.rates)
-    product_rates = rate_rules.product_kg_ha(rates, config.rates.product)
+    rates = rate_rules.p2o5_rate_kg_ha(patch_means(labels, rule_stp2d), rule)
+    product_rates = rate_rules.product_kg_ha(rates, rule.product)
     patches = []
     for i, cls in enumerate(patch_class.tolist()):
         area = float(counts[i]) * grid.cell_area_ha
@@ -301,7 +343,7 @@ def _prescription_patches(
             "mean_stp_mg_kg": float(mean_stp[i]),
             "mean_available_p_mg_kg": float(mean_avail[i]),
             "p2o5_kg_ha": float(rates[i]),
-            "product": config.rates.product,
+            "product": rule.product,
             "product_kg_ha": float(product_rates[i]),
             "product_total_kg": float(product_rates[i]) * area,
         })
@@ -341,13 +383,3 @@ def _zone_table(
         "mean_p2o5_kg_ha": round(p2o5_total / area, 1),
     }
     return table, totals
-
-
-def _check_output_dir(out_dir: Path, overwrite: bool) -> None:
-    if out_dir.exists() and not out_dir.is_dir():
-        raise OutputExistsError(f"output path {out_dir} exists and is not a directory")
-    if out_dir.is_dir() and any(out_dir.iterdir()) and not overwrite:
-        raise OutputExistsError(
-            f"output directory {out_dir} exists and is not empty; choose another directory "
-            "or pass --overwrite (overwrite=True) to replace it"
-        )

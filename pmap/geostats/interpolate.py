@@ -132,10 +132,10 @@ class KrigingSettings:
 def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSettings) -> float:
     """Least nugget (units of the kriged variable squared) allowed by the lab's precision.
 
-    pH (and buffer pH) use ``lab_error_sd_ph``; other properties a relative error
+    pH uses ``lab_error_sd_ph``; other properties a relative error
     ``lab_error_cv`` of the sample mean, or ``log(1 + cv^2)`` when the logarithm is kriged.
     """
-    if name in ("ph", "buffer_ph"):
+    if name == "ph":
         return float(settings.lab_error_sd_ph) ** 2
     cv = float(settings.lab_error_cv)
     if log:

@@ -21,6 +21,7 @@ import pandas as pd
 from pmap._checks import check_choice
 from pmap.errors import ConfigError, InputError, PmapWarning
 from pmap.io.crs import normalise_crs
+from pmap.soil.conversions import SOIL_TEST_METHODS
 
 __all__ = [
     "STP_METHODS",
@@ -32,7 +33,7 @@ __all__ = [
 ]
 
 #: Soil-test P extraction methods pmap knows.
-STP_METHODS: tuple[str, ...] = ("mehlich3_icp", "mehlich3_colorimetric", "bray1", "olsen")
+STP_METHODS: tuple[str, ...] = SOIL_TEST_METHODS
 
 _MG_KG_SUFFIX = re.compile(r"_(ppm|mg_kg|mgkg|mg_per_kg|pct|percent)$")
 _LB_SUFFIX = re.compile(r"_(lbs?_?(ac|a|acre))$")

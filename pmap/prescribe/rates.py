@@ -6,6 +6,7 @@ and returns kg P2O5/ha.  All functions are vectorised; NaN soil-test P gives a N
 
 from __future__ import annotations
 
+import dataclasses
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -13,11 +14,14 @@ from numpy.typing import ArrayLike
 
 from pmap._checks import check_choice, check_number, require
 from pmap.errors import ConfigError
-from pmap.soil.conversions import SOIL_TEST_METHODS, lb_acre_to_kg_ha
+from pmap.soil.conversions import SOIL_TEST_METHODS, bray1_from_mehlich3_icp, lb_acre_to_kg_ha
 
 __all__ = [
     "CROP_REMOVAL_LB_P2O5_PER_BU",
     "CRITICAL_PPM_MEHLICH3",
+    "CRITICAL_PPM_BRAY1",
+    "MAINTENANCE_LIMIT_PPM_MEHLICH3",
+    "resolve_rule",
     "PRODUCT_P2O5_FRACTION",
     "RateRule",
     "crop_removal_lb_acre",
@@ -34,6 +38,14 @@ CROP_REMOVAL_LB_P2O5_PER_BU: dict[str, float] = {"corn": 0.37, "soybean": 0.75, 
 
 #: Mehlich-3 critical soil-test P (ppm) by crop.  Source: Tri-State 2020 (Bulletin 974).
 CRITICAL_PPM_MEHLICH3: dict[str, float] = {"corn": 20.0, "soybean": 20.0, "wheat": 30.0}
+
+#: Bray P1 critical soil-test P (ppm) by crop.  Source: Tri-State 1995 (E-2567), via Ohio
+#: State agronomy pages.
+CRITICAL_PPM_BRAY1: dict[str, float] = {"corn": 15.0, "soybean": 15.0}
+
+#: Mehlich-3 soil-test P (ppm) at or above which no P is suggested.  Source: Tri-State 2020
+#: (Bulletin 974), via Ohio State agronomy pages.
+MAINTENANCE_LIMIT_PPM_MEHLICH3: float = 50.0
 
 #: P2O5 mass fraction of common P fertilizers.  MAP 11-52-0 and DAP 18-46-0: Ohioline
 #: ANR-74; TSP 0-46-0: common practice, no source.
@@ -70,27 +82,30 @@ class RateRule:
             "source": "Villamil, Nafziger & Behnke (2019)",
         },
     )
-    soil_test_method: str = field(
-        default="mehlich3_icp",
+    soil_test_method: str | None = field(
+        default=None,
         metadata={
             "unit": "",
-            "doc": "soil-test method the critical and limit values refer to",
-            "source": "from memory, unverified",
+            "doc": "soil-test method the critical and limit values refer to; unset: the "
+            "samples' own method (another method makes pmap convert the soil test first)",
+            "source": "common practice, no source",
         },
     )
-    critical_ppm: float = field(
-        default=20.0,
+    critical_ppm: float | None = field(
+        default=None,
         metadata={
             "unit": "mg/kg",
-            "doc": "soil-test P below which build-up P is added",
-            "source": _TRI_STATE,
+            "doc": "soil-test P below which build-up P is added; unset: Mehlich-3 corn/soybean "
+            "20, wheat 30; Bray-1 corn/soybean 15; other cases must set it",
+            "source": "Tri-State 2020 (Bulletin 974); Tri-State 1995 (E-2567) for Bray-1",
         },
     )
-    maintenance_limit_ppm: float = field(
-        default=50.0,
+    maintenance_limit_ppm: float | None = field(
+        default=None,
         metadata={
             "unit": "mg/kg",
-            "doc": "soil-test P at or above which no P is suggested",
+            "doc": "soil-test P at or above which no P is suggested; unset: Mehlich-3 50, "
+            "Bray-1 33.5 (the Mehlich-3 50 through the Bray-1 regression); Olsen must set it",
             "source": _TRI_STATE,
         },
     )
@@ -152,11 +167,16 @@ class RateRule:
                 )
         else:
             check_number("rates.removal_lb_p2o5_per_bu", self.removal_lb_p2o5_per_bu, ge=0)
-        check_choice("rates.soil_test_method", self.soil_test_method, SOIL_TEST_METHODS)
+        if self.soil_test_method is not None:
+            check_choice("rates.soil_test_method", self.soil_test_method, SOIL_TEST_METHODS)
         check_number("rates.yield_goal", self.yield_goal, ge=0)
-        check_number("rates.critical_ppm", self.critical_ppm, gt=0)
-        require(self.maintenance_limit_ppm > self.critical_ppm, "rates.maintenance_limit_ppm",
-                f"exceed rates.critical_ppm ({self.critical_ppm})", self.maintenance_limit_ppm)
+        if self.critical_ppm is not None:
+            check_number("rates.critical_ppm", self.critical_ppm, gt=0)
+        if self.maintenance_limit_ppm is not None:
+            check_number("rates.maintenance_limit_ppm", self.maintenance_limit_ppm, gt=0)
+        if self.critical_ppm is not None and self.maintenance_limit_ppm is not None:
+            require(self.maintenance_limit_ppm > self.critical_ppm, "rates.maintenance_limit_ppm",
+                    f"exceed rates.critical_ppm ({self.critical_ppm})", self.maintenance_limit_ppm)
         check_number("rates.buildup_lb_p2o5_per_acre_per_ppm",
                      self.buildup_lb_p2o5_per_acre_per_ppm, ge=0)
         years = self.years_to_build
@@ -180,6 +200,59 @@ class RateRule:
         if self.removal_lb_p2o5_per_bu is not None:
             return float(self.removal_lb_p2o5_per_bu)
         return CROP_REMOVAL_LB_P2O5_PER_BU[self.crop]
+
+
+def _default_critical(method: str, crop: str) -> float | None:
+    if method in ("mehlich3_icp", "mehlich3_colorimetric"):
+        return CRITICAL_PPM_MEHLICH3.get(crop)
+    if method == "bray1":
+        return CRITICAL_PPM_BRAY1.get(crop)
+    return None
+
+
+def _default_limit(method: str) -> float | None:
+    if method in ("mehlich3_icp", "mehlich3_colorimetric"):
+        return MAINTENANCE_LIMIT_PPM_MEHLICH3
+    if method == "bray1":
+        return round(float(bray1_from_mehlich3_icp(MAINTENANCE_LIMIT_PPM_MEHLICH3)), 1)
+    return None
+
+
+def resolve_rule(rule: RateRule, method: str) -> RateRule:
+    """The rule with its method, critical level and limit filled in for soil tests by ``method``.
+
+    Unset values follow the samples' method and the crop (see the ``[rates]`` keys).
+
+    Raises
+    ------
+    ConfigError
+        No published default exists for this method and crop: the message names the key.
+    """
+    method = rule.soil_test_method or method
+    check_choice("soil-test method", method, SOIL_TEST_METHODS)
+    critical = rule.critical_ppm if rule.critical_ppm is not None else _default_critical(method, rule.crop)
+    if critical is None:
+        raise ConfigError(
+            f"rates.critical_ppm has no default for {method} soil tests and crop {rule.crop!r}: "
+            "set it (mg/kg) from your region's calibration"
+        )
+    limit = (rule.maintenance_limit_ppm if rule.maintenance_limit_ppm is not None
+             else _default_limit(method))
+    if limit is None:
+        raise ConfigError(
+            f"rates.maintenance_limit_ppm has no default for {method} soil tests: set it (mg/kg) "
+            "from your region's calibration"
+        )
+    require(limit > critical, "rates.maintenance_limit_ppm",
+            f"exceed rates.critical_ppm ({critical})", limit)
+    return dataclasses.replace(rule, soil_test_method=method, critical_ppm=float(critical),
+                               maintenance_limit_ppm=float(limit))
+
+
+def _resolved(rule: RateRule) -> RateRule:
+    if rule.critical_ppm is None or rule.maintenance_limit_ppm is None or rule.soil_test_method is None:
+        return resolve_rule(rule, rule.soil_test_method or "mehlich3_icp")
+    return rule
 
 
 def crop_removal_lb_acre(crop: str, yield_bu_acre: float) -> float:
@@ -223,6 +296,7 @@ def buildup_maintenance_lb_acre(stp_ppm: ArrayLike, rule: RateRule = RateRule())
     numpy.ndarray
         P2O5 need (lb P2O5/acre); NaN where STP is NaN.
     """
+    rule = _resolved(rule)
     stp = np.maximum(np.asarray(stp_ppm, dtype=float), 0.0)
     removal = removal_lb_acre(rule)
     buildup = (

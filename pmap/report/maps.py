@@ -3,8 +3,9 @@
 Each map shows the layer (colour bar with its unit, or a legend of class labels with their
 areas), the sample points, the field boundary, a scale bar, a grid-north arrow, a title
 with the field name and a subtitle, and a CRS note.  Continuous layers use perceptual,
-colour-blind-safe colour maps (viridis by default); class layers use evenly spaced viridis
-colours (:func:`pmap.io.rasters.class_colours`), the same as the GeoTIFF colour tables.
+colour-blind-safe colour maps (viridis by default); class layers use the colours the
+caller passes (pmap's outputs pass the same Okabe-Ito colours as the GeoTIFF colour tables),
+or evenly spaced viridis colours (:func:`pmap.io.rasters.class_colours`) when none are given.
 
 Figures are drawn with matplotlib's object API on an Agg canvas, so importing this module
 never changes the caller's pyplot backend.

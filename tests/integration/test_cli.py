@@ -194,3 +194,39 @@ def test_config_reference_is_current():
 
     # The documentation is generated from the code; it must not drift.
     assert (ROOT / "docs" / "configuration.md").read_text() == configuration_reference() + "\n"
+
+
+def test_overwrite_replaces_only_a_previous_pmap_output(field, tmp_path):
+    paths, _ = field
+    # A directory pmap did not write is never replaced, even with --overwrite.
+    foreign = tmp_path / "foreign"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("precious")
+    proc = pmap_cli("run", paths["samples"], "--boundary", paths["boundary"], "--out", foreign,
+                    "--overwrite")
+    assert proc.returncode == 4 and "no pmap summary.json" in proc.stderr, proc.stderr
+    assert (foreign / "notes.txt").read_text() == "precious"
+    # Nor is a directory that holds the run's own inputs.
+    proc = pmap_cli("run", paths["samples"], "--boundary", paths["boundary"],
+                    "--out", paths["samples"].parent, "--overwrite")
+    assert proc.returncode == 4 and "holds the input" in proc.stderr, proc.stderr
+    assert paths["samples"].is_file()
+
+
+def test_an_unwritable_output_path_is_one_line_before_any_work(field, tmp_path):
+    paths, _ = field
+    out = paths["samples"] / "out"  # its parent is a file
+    proc = pmap_cli("run", paths["samples"], "--boundary", paths["boundary"], "--out", out)
+    assert proc.returncode == 1, proc.stderr
+    errors = [line for line in proc.stderr.splitlines() if line.startswith("pmap: error:")]
+    assert len(errors) == 1 and "not a writable directory" in errors[0], proc.stderr
+    assert "Traceback" not in proc.stderr and "kriged" not in proc.stderr
+
+
+def test_quiet_prints_only_the_caution(field, tmp_path):
+    paths, _ = field
+    proc = pmap_cli("-q", "run", paths["samples"], "--boundary", paths["boundary"],
+                    "--out", tmp_path / "out", "--cell-size", 25)
+    assert proc.returncode == 0, proc.stderr
+    assert proc.stdout == ""
+    assert [line.split(":")[0] for line in proc.stderr.splitlines()] == ["CAUTION"]

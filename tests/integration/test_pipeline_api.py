@@ -66,20 +66,54 @@ def test_zone_rate_raster_matches_the_polygons(demo_inputs, tmp_path):
     assert len(shp) == len(zones) and "P2O5_KGHA" in shp.columns
 
 
-def test_bray_samples_are_converted_to_the_rules_method(demo_inputs, tmp_path):
+def _bray_samples(demo_inputs, tmp_path):
     table = pd.read_csv(demo_inputs["samples"])
     # Source: Ohio State FAQ, Bray-1 = -8.08 + 0.832 x Mehlich-3 ICP (see DOMAIN.md)
     bray = convert_soil_test(table["mehlich3_p"].to_numpy(), "mehlich3_icp", "bray1")
     samples = tmp_path / "bray.csv"
     table.drop(columns=["mehlich3_p"]).assign(bray1_p=np.round(bray, 1)).to_csv(samples, index=False)
+    return samples
+
+
+def test_bray_samples_use_the_bray_rule_by_default(demo_inputs, tmp_path):
+    samples = _bray_samples(demo_inputs, tmp_path)
     config = pmap.load_config().replace("grid", cell_size_m=20.0)
+    result = _run(samples, demo_inputs["boundary"], tmp_path / "out", config)
+    assert result.stp_source["method"] == "bray1"
+    # Source: Tri-State 1995 (E-2567), Bray P1 critical level 15 ppm for corn and soybean
+    assert result.rule.soil_test_method == "bray1" and result.rule.critical_ppm == 15.0
+    inside = result.grid.mask
+    expected = p2o5_rate_kg_ha(result.layers["stp"][inside], result.rule)
+    assert np.allclose(result.layers["p2o5_rate"][inside], expected)
+
+
+def test_a_rule_for_another_method_converts_the_soil_test_first(demo_inputs, tmp_path):
+    samples = _bray_samples(demo_inputs, tmp_path)
+    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace(
+        "rates", soil_test_method="mehlich3_icp")
     with pytest.warns(pmap.PmapWarning, match="converted"):
         result = pmap.run_field(samples, demo_inputs["boundary"], tmp_path / "out", config)
-    assert result.stp_source["method"] == "bray1"
+    assert result.rule.critical_ppm == 20.0
     inside = result.grid.mask
-    stp = result.layers["stp"][inside]
-    rule_stp = convert_soil_test(stp, "bray1", "mehlich3_icp")
-    assert np.allclose(result.layers["p2o5_rate"][inside], p2o5_rate_kg_ha(rule_stp, config.rates))
+    rule_stp = convert_soil_test(result.layers["stp"][inside], "bray1", "mehlich3_icp")
+    assert np.allclose(result.layers["p2o5_rate"][inside], p2o5_rate_kg_ha(rule_stp, result.rule))
+
+
+def test_olsen_samples_need_an_olsen_rule(demo_inputs, tmp_path):
+    table = pd.read_csv(demo_inputs["samples"])
+    samples = tmp_path / "olsen.csv"
+    table.rename(columns={"mehlich3_p": "olsen_p"}).assign(
+        olsen_p=lambda t: (t["olsen_p"] / 2).round(1)).to_csv(samples, index=False)
+    config = pmap.load_config().replace("grid", cell_size_m=20.0)
+    with pytest.raises(pmap.ConfigError, match="rates.critical_ppm has no default for olsen"):
+        _run(samples, demo_inputs["boundary"], tmp_path / "out", config)
+    with pytest.raises(pmap.ConfigError, match="does not convert Olsen"):
+        _run(samples, demo_inputs["boundary"], tmp_path / "out",
+             config.replace("rates", soil_test_method="mehlich3_icp"))
+    olsen_rule = config.replace("rates", critical_ppm=10.0, maintenance_limit_ppm=25.0)
+    result = _run(samples, demo_inputs["boundary"], tmp_path / "out", olsen_rule)
+    assert result.rule.soil_test_method == "olsen"
+    assert not (tmp_path / "out" / "summary.json").read_text().count("rule_conversion")
 
 
 def test_a_failure_while_writing_leaves_no_output_and_keeps_the_old_one(demo_inputs, tmp_path,

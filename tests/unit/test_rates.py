@@ -122,3 +122,23 @@ def test_rule_validation():
         RateRule(product="UAN")
     with pytest.raises(ConfigError, match="product"):
         product_kg_ha(10.0, "SSP")
+
+
+def test_resolve_rule_fills_published_defaults_by_method_and_crop():
+    from pmap.prescribe.rates import resolve_rule
+
+    # Source: Tri-State 2020 (Bulletin 974): Mehlich-3 critical 20 ppm corn/soybean,
+    # 30 ppm wheat; no P at or above 50 ppm.
+    corn = resolve_rule(RateRule(), "mehlich3_icp")
+    assert (corn.critical_ppm, corn.maintenance_limit_ppm) == (20.0, 50.0)
+    assert resolve_rule(RateRule(crop="wheat"), "mehlich3_icp").critical_ppm == 30.0
+    # Source: Tri-State 1995 (E-2567): Bray P1 critical 15 ppm corn/soybean; the limit is the
+    # Mehlich-3 50 ppm through the Ohio State Bray-1 regression, -8.08 + 0.832 x 50 = 33.5.
+    bray = resolve_rule(RateRule(), "bray1")
+    assert (bray.critical_ppm, bray.maintenance_limit_ppm) == (15.0, 33.5)
+    with pytest.raises(ConfigError, match="rates.critical_ppm has no default for olsen"):
+        resolve_rule(RateRule(), "olsen")
+    with pytest.raises(ConfigError, match="rates.maintenance_limit_ppm has no default for olsen"):
+        resolve_rule(RateRule(critical_ppm=10.0), "olsen")
+    explicit = resolve_rule(RateRule(soil_test_method="bray1", critical_ppm=18.0), "mehlich3_icp")
+    assert (explicit.soil_test_method, explicit.critical_ppm) == ("bray1", 18.0)
