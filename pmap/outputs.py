@@ -290,9 +290,8 @@ def write_outputs(
             )
             outputs[f"maps/variogram_{name}.png"] = f"empirical and fitted variogram of {name}"
 
-        polygons = vectors.zone_polygons(result.layers["zones"], grid)
-        if len(polygons) != len(result.patches):
-            raise RuntimeError("zone polygons and prescription patches disagree")
+        polygons = vectors.patch_polygons(
+            result.patch_labels, [p["class_id"] for p in result.patches], grid)
         frame = vectors.zone_frame(polygons, result.patches, grid.crs)
         vectors.write_geopackage(tmp / "rate_zones.gpkg", frame)
         outputs["rate_zones.gpkg"] = "rate-zone polygons (layer rate_zones) with class, area, rate"

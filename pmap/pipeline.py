@@ -68,6 +68,7 @@ class FieldResult:
     layers: dict[str, np.ndarray]
     zone_table: list[dict[str, Any]]
     patches: list[dict[str, Any]]
+    patch_labels: np.ndarray
     totals: dict[str, Any]
     stp_source: dict[str, Any]
     rule: RateRule
@@ -81,12 +82,13 @@ def prepare_inputs(
 ) -> FieldInputs:
     """Read, check and reproject the samples and the boundary; fix the run's grid."""
     user_crs = normalise_crs(config.grid.crs) if config.grid.crs else None
+    outline, outline_crs = boundary_io.read_boundary(boundary_path, crs=user_crs)
     if user_crs and is_projected_metres(user_crs):
         working_crs = user_crs
     else:
-        lon, lat = boundary_io.boundary_lonlat_centroid(boundary_path, crs=user_crs)
-        working_crs = utm_crs_for(lon, lat)
-    boundary = boundary_io.load_boundary(boundary_path, working_crs, crs=user_crs)
+        working_crs = utm_crs_for(*boundary_io.lonlat_centroid(outline, outline_crs))
+    boundary = boundary_io.project_boundary(outline, outline_crs, working_crs,
+                                            Path(boundary_path).name)
     samples = load_samples(samples_path, config.samples, input_crs=user_crs, working_crs=working_crs)
     n_read = len(samples.ids)
     inside = boundary_io.samples_inside(samples, boundary, buffer_m=config.grid.sample_buffer_m)
@@ -251,15 +253,16 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
 
     avail2d = layers.get("available_p")
     patches, labels = _prescription_patches(zones, stp2d, grid.fill(rule_stp), avail2d, grid,
-                                            config, rule)
+                                            config.zones.labels, rule)
     zone_rates = np.array([np.nan] + [p["p2o5_kg_ha"] for p in patches])
     layers["p2o5_zone_rate"] = zone_rates[labels]
-    zone_table, totals = _zone_table(patches, zones, stp2d, avail2d, grid, config)
+    zone_table, totals = _zone_table(patches, zones, stp2d, avail2d, grid,
+                                     config.zones.labels, rule)
 
     return FieldResult(
         out_dir=out_dir, grid=grid, config=config, interpolations=kriged, layers=layers,
-        zone_table=zone_table, patches=patches, totals=totals, stp_source=stp_source,
-        rule=rule, summary={},
+        zone_table=zone_table, patches=patches, patch_labels=labels, totals=totals,
+        stp_source=stp_source, rule=rule, summary={},
     )
 
 
@@ -317,7 +320,7 @@ def _rate_driver(
 
 def _prescription_patches(
     zones: np.ndarray, stp2d: np.ndarray, rule_stp2d: np.ndarray, avail2d: np.ndarray | None,
-    grid: GridSpec, config: FieldConfig, rule: RateRule,
+    grid: GridSpec, class_labels: tuple[str, ...], rule: RateRule,
 ) -> tuple[list[dict[str, Any]], np.ndarray]:
     """One prescription record per connected zone patch: its area, mean soil test and rate.
 
@@ -338,7 +341,7 @@ def _prescription_patches(
         patches.append({
             "zone_id": i + 1,
             "class_id": cls,
-            "class_label": config.zones.labels[cls - 1],
+            "class_label": class_labels[cls - 1],
             "area_ha": area,
             "mean_stp_mg_kg": float(mean_stp[i]),
             "mean_available_p_mg_kg": float(mean_avail[i]),
@@ -352,12 +355,12 @@ def _prescription_patches(
 
 def _zone_table(
     patches: list[dict[str, Any]], zones: np.ndarray, stp2d: np.ndarray,
-    avail2d: np.ndarray | None, grid: GridSpec, config: FieldConfig,
+    avail2d: np.ndarray | None, grid: GridSpec, class_labels: tuple[str, ...], rule: RateRule,
 ) -> tuple[list[dict[str, Any]], dict[str, Any]]:
     """Per-class table and field totals from the prescription patches."""
     layers = {"stp": stp2d} if avail2d is None else {"stp": stp2d, "available_p": avail2d}
     table = []
-    for row in zone_statistics(zones, layers, grid.cell_area_ha, config.zones.labels):
+    for row in zone_statistics(zones, layers, grid.cell_area_ha, class_labels):
         mine = [p for p in patches if p["class_id"] == row["class_id"]]
         p2o5_kg = sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine)
         table.append({
@@ -370,7 +373,7 @@ def _zone_table(
                                        if avail2d is not None else None),
             "p2o5_kg_ha": round(p2o5_kg / row["area_ha"], 1),
             "p2o5_total_kg": round(p2o5_kg, 1),
-            "product": config.rates.product,
+            "product": rule.product,
             "product_total_kg": round(sum(p["product_total_kg"] for p in mine), 1),
         })
     area = grid.n_inside * grid.cell_area_ha
@@ -378,7 +381,7 @@ def _zone_table(
     totals = {
         "area_ha": round(area, 3),
         "p2o5_total_kg": round(p2o5_total, 1),
-        "product": config.rates.product,
+        "product": rule.product,
         "product_total_kg": round(sum(r["product_total_kg"] for r in table), 1),
         "mean_p2o5_kg_ha": round(p2o5_total / area, 1),
     }

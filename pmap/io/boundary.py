@@ -20,6 +20,8 @@ from pmap.io.samples import SampleTable
 __all__ = [
     "read_boundary",
     "load_boundary",
+    "project_boundary",
+    "lonlat_centroid",
     "boundary_lonlat_centroid",
     "field_mask",
     "grid_for_boundary",
@@ -107,9 +109,19 @@ def load_boundary(path: str | Path, working_crs: str, *, crs: str | None = None)
     pmap.errors.InputError
         Missing file, no CRS, no polygon, zero area.
     """
+    geometry, file_crs = read_boundary(path, crs)
+    return project_boundary(geometry, file_crs, working_crs, Path(path).name)
+
+
+def project_boundary(geometry: BaseGeometry, file_crs: str, working_crs: str,
+                     name: str = "boundary") -> BaseGeometry:
+    """A boundary from :func:`read_boundary` reprojected to the working CRS (m).
+
+    ``name`` (the file's name) is used in messages.  Invalid rings after projection are
+    repaired; a result that is not finite or has no area is an :class:`InputError`.
+    """
     from pyproj import Transformer
 
-    geometry, file_crs = read_boundary(path, crs)
     target = normalise_crs(working_crs)
     if file_crs != target:
         tr = Transformer.from_crs(to_pyproj(file_crs), to_pyproj(target), always_xy=True)
@@ -119,10 +131,10 @@ def load_boundary(path: str | Path, working_crs: str, *, crs: str | None = None)
             parts = _polygonal_parts(geometry)
             geometry = parts[0] if len(parts) == 1 else shapely.MultiPolygon(parts)
     if not np.isfinite(shapely.get_coordinates(geometry)).all():
-        raise InputError(f"{Path(path).name}: the boundary cannot be projected to {target}: "
+        raise InputError(f"{name}: the boundary cannot be projected to {target}: "
                          "check its CRS")
     if geometry.area <= 0:
-        raise InputError(f"{Path(path).name}: the boundary has zero area: check the polygon")
+        raise InputError(f"{name}: the boundary has zero area: check the polygon")
     return geometry
 
 
@@ -132,7 +144,11 @@ def boundary_lonlat_centroid(path: str | Path, *, crs: str | None = None) -> tup
     Use it with :func:`pmap.io.crs.utm_crs_for` to choose the working CRS when the samples
     are in projected coordinates.
     """
-    geometry, file_crs = read_boundary(path, crs)
+    return lonlat_centroid(*read_boundary(path, crs))
+
+
+def lonlat_centroid(geometry: BaseGeometry, file_crs: str) -> tuple[float, float]:
+    """Longitude and latitude (degrees, WGS 84) of a geometry's centroid."""
     from pyproj import Transformer
 
     c = geometry.centroid

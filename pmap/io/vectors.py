@@ -27,6 +27,7 @@ __all__ = [
     "SHAPEFILE_FIELDS",
     "patch_labels",
     "zone_polygons",
+    "patch_polygons",
     "zone_frame",
     "write_zone_polygons",
     "write_geopackage",
@@ -92,17 +93,30 @@ def zone_polygons(zones: np.ndarray, grid: GridSpec) -> list[tuple[BaseGeometry,
         Polygon in ``grid.crs`` and its class id; item k is patch k + 1 of
         :func:`patch_labels`.
     """
-    from rasterio.features import shapes
-
     labels = patch_labels(zones, grid)
     zones = np.asarray(zones)
-    found: dict[int, BaseGeometry] = {}
-    for geom, value in shapes(labels, mask=labels > 0, connectivity=4, transform=grid.transform):
-        found[int(value)] = shape(geom)
-    class_of = np.zeros(len(found) + 1, dtype=np.int64)
+    class_of = np.zeros(int(labels.max(initial=0)) + 1, dtype=np.int64)
     inside = labels > 0
     class_of[labels[inside]] = zones[inside]
-    return [(found[label], int(class_of[label])) for label in range(1, len(found) + 1)]
+    return patch_polygons(labels, class_of[1:], grid)
+
+
+def patch_polygons(labels: np.ndarray, patch_class: Sequence[int],
+                   grid: GridSpec) -> list[tuple[BaseGeometry, int]]:
+    """One polygon per numbered patch of a label raster (0 = none).
+
+    ``labels`` and ``patch_class`` are the output of
+    :func:`pmap.prescribe.zones.label_patches`; item k of the result is patch k + 1.
+    """
+    from rasterio.features import shapes
+
+    found: dict[int, BaseGeometry] = {}
+    for geom, value in shapes(np.asarray(labels, dtype=np.int32), mask=np.asarray(labels) > 0,
+                              connectivity=4, transform=grid.transform):
+        found[int(value)] = shape(geom)
+    if sorted(found) != list(range(1, len(patch_class) + 1)):
+        raise ValueError(f"labels hold patches {sorted(found)[:5]}..., expected 1..{len(patch_class)}")
+    return [(found[k + 1], int(cls)) for k, cls in enumerate(patch_class)]
 
 
 def zone_frame(patches: Sequence[tuple[BaseGeometry, int]], attributes: Attributes | None, crs: str):
