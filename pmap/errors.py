@@ -39,12 +39,13 @@ class ModelFitError(PmapError, RuntimeError):
     """A variogram or kriging system could not be fitted or solved."""
 
 
-class OutputExistsError(PmapError, FileExistsError):
-    """The output directory exists and is not empty, and overwriting was not asked for."""
-
-
 class OutputError(PmapError, OSError):
-    """The outputs cannot be written where they were asked for."""
+    """The outputs cannot be written where they were asked for (e.g. no space left)."""
+
+
+class OutputExistsError(OutputError, FileExistsError):
+    """The output directory may not be written: it exists and may not be replaced, or
+    another run holds it."""
 
 
 class PmapWarning(UserWarning):
