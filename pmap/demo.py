@@ -14,7 +14,6 @@ regenerates them on the fly, so an installed pmap needs no data files.
 
 from __future__ import annotations
 
-import shutil
 import tempfile
 from pathlib import Path
 
@@ -23,6 +22,7 @@ import numpy as np
 __all__ = [
     "DEMO_CRS",
     "DEMO_SEED",
+    "DEMO_INPUTS_LABEL",
     "truth",
     "boundary_coords",
     "demo_samples",
@@ -34,6 +34,8 @@ __all__ = [
 DEMO_CRS = "EPSG:32616"
 #: South-west corner of the field's frame in DEMO_CRS (m).
 _ORIGIN = (330_000.0, 4_443_000.0)
+#: How the demo's (temporary) input files are named in summary.json and manifest.json.
+DEMO_INPUTS_LABEL = "(bundled demo inputs)"
 #: Seed of the sample jitter and lab noise.
 DEMO_SEED = 20261014
 #: Sample spacing of the grid survey (m): one sample per hectare.
@@ -183,17 +185,22 @@ def write_demo_inputs(directory: str | Path) -> dict[str, Path]:
 def run_demo(out_dir: str | Path, *, overwrite: bool = False):
     """Run the whole job on the demo field and write every output into ``out_dir``.
 
+    The inputs are written to a temporary folder that is removed afterwards, so
+    summary.json and manifest.json record them as ``(bundled demo inputs) <name>`` beside
+    their copies in ``out_dir/inputs/``, never as the vanished temporary paths.
+
     Returns the :class:`pmap.pipeline.FieldResult`.
     """
     from pmap.config import load_config
+    from pmap.outputs import inputs_recorded_as
     from pmap.pipeline import run_field
 
     with tempfile.TemporaryDirectory(prefix="pmap-demo-") as tmp:
         paths = write_demo_inputs(tmp)
         config = load_config(paths["config"])
-        result = run_field(
-            paths["samples"], paths["boundary"], out_dir, config, overwrite=overwrite,
-            config_path=paths["config"],
-        )
-    shutil.rmtree(tmp, ignore_errors=True)
+        with inputs_recorded_as(DEMO_INPUTS_LABEL):
+            result = run_field(
+                paths["samples"], paths["boundary"], out_dir, config, overwrite=overwrite,
+                config_path=paths["config"],
+            )
     return result

@@ -1,7 +1,7 @@
-"""Write a field's results: GeoTIFFs, rate-zone polygons, review maps and summary.json.
+"""Write a field's results: GeoTIFFs, rate-zone polygons, review maps, summary.json, manifest.json.
 
 Everything is built in a hidden staging directory beside the target and moved into place
-only when complete (see :func:`publish`); on any error the staging directory is removed
+only when complete (see :mod:`pmap.io.publish`); on any error the staging directory is removed
 and an existing output directory is left as it was.
 """
 
@@ -9,11 +9,12 @@ from __future__ import annotations
 
 import dataclasses
 import json
-import os
 import shutil
-import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
 from dataclasses import dataclass
-from datetime import datetime, timezone
+from datetime import date, datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -21,15 +22,17 @@ import numpy as np
 
 from pmap._version import __version__
 from pmap.cautions import CAUTIONS, CAUTIONS_SHORT
-from pmap.errors import OutputError, OutputExistsError
 from pmap.io import rasters, vectors
+from pmap.io.manifest import file_record, write_manifest
+from pmap.io.publish import OutputTransaction, open_transaction
 from pmap.prescribe.zones import CLASS_LABELS
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
 
 if TYPE_CHECKING:
     from pmap.pipeline import FieldInputs, FieldResult
 
-__all__ = ["LAYERS", "LayerInfo", "check_output_dir", "write_outputs", "publish", "staging_dir"]
+__all__ = ["LAYERS", "LayerInfo", "check_output_dir", "write_outputs",
+           "inputs_recorded_as", "output_timestamp"]
 
 
 @dataclass(frozen=True)
@@ -113,81 +116,29 @@ def _hex_to_rgba(colour: str) -> tuple[int, int, int, int]:
     return (int(colour[0:2], 16), int(colour[2:4], 16), int(colour[4:6], 16), 255)
 
 
-def staging_dir(out_dir: Path) -> Path:
-    """A fresh hidden directory beside ``out_dir`` to build the outputs in."""
-    out_dir.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out_dir.parent / f".{out_dir.name}.partial-{uuid.uuid4().hex[:8]}"
-    tmp.mkdir()
-    return tmp
-
-
-def check_output_dir(out_dir: Path, overwrite: bool, inputs: list[Path]) -> None:
+def check_output_dir(out_dir: Path, overwrite: bool, inputs: list[Path]) -> OutputTransaction:
     """Refuse, before any work, an output directory pmap must not write or replace.
 
-    A non-empty directory is replaced only with ``overwrite`` and only when it holds a
-    previous pmap output (a ``summary.json`` written by pmap); a directory that holds one
-    of the run's inputs is never replaced.
+    A non-empty directory is replaced only with ``overwrite`` and only when it is a
+    previous pmap output whose ``manifest.json`` vouches for every file in it; a directory
+    that holds one of the run's inputs is never replaced.  The directory is locked against
+    other runs from here until the returned transaction is published or closed (dropping
+    it closes it), and folders left by interrupted runs are recovered
+    (:mod:`pmap.io.publish`).
+
+    Returns
+    -------
+    OutputTransaction
+        Pass it to :func:`write_outputs` (``transaction=``) to publish under the same lock.
 
     Raises
     ------
     OutputExistsError
-        The directory exists and may not be replaced.
+        Another run holds the directory, or it exists and may not be replaced.
     OutputError
         The directory cannot be created or written.
     """
-    out_dir = Path(out_dir)
-    if out_dir.exists() and not out_dir.is_dir():
-        raise OutputExistsError(f"output path {out_dir} exists and is not a directory")
-    target = out_dir.resolve()
-    for path in inputs:
-        if target == Path(path).resolve() or target in Path(path).resolve().parents:
-            raise OutputExistsError(
-                f"output directory {out_dir} holds the input {path}; write the outputs elsewhere"
-            )
-    if out_dir.is_dir() and any(out_dir.iterdir()):
-        if not overwrite:
-            raise OutputExistsError(
-                f"output directory {out_dir} exists and is not empty; choose another directory "
-                "or pass --overwrite (overwrite=True) to replace it"
-            )
-        if not _is_pmap_output(out_dir):
-            raise OutputExistsError(
-                f"output directory {out_dir} is not empty and holds no pmap summary.json; "
-                "--overwrite replaces only a previous pmap output: choose another directory"
-            )
-    parent = target.parent
-    while not parent.exists():
-        parent = parent.parent
-    if not parent.is_dir() or not os.access(parent, os.W_OK | os.X_OK):
-        raise OutputError(f"cannot create the output directory {out_dir}: {parent} is not a "
-                          "writable directory")
-
-
-def _is_pmap_output(directory: Path) -> bool:
-    try:
-        summary = json.loads((directory / "summary.json").read_text(encoding="utf-8"))
-    except (OSError, ValueError):
-        return False
-    return isinstance(summary, dict) and "pmap_version" in summary
-
-
-def publish(tmp: Path, out_dir: Path) -> None:
-    """Move a completed staging directory into place, replacing ``out_dir`` last.
-
-    If the final rename fails, the previous output is put back.
-    """
-    old = None
-    if out_dir.exists():
-        old = out_dir.parent / f".{out_dir.name}.old-{uuid.uuid4().hex[:8]}"
-        os.replace(out_dir, old)
-    try:
-        os.replace(tmp, out_dir)
-    except OSError:
-        if old is not None:
-            os.replace(old, out_dir)
-        raise
-    if old is not None:
-        shutil.rmtree(old, ignore_errors=True)
+    return open_transaction(out_dir, overwrite, inputs)
 
 
 def _json_safe(obj: Any) -> Any:
@@ -206,15 +157,65 @@ def _json_safe(obj: Any) -> Any:
     return obj
 
 
-def _copy_input(src: Path, dest_dir: Path) -> str:
-    """Copy an input file (with a shapefile's sidecar files) into ``dest_dir``."""
-    dest_dir.mkdir(exist_ok=True)
-    if src.suffix.lower() == ".shp":
-        for sidecar in src.parent.glob(src.stem + ".*"):
-            shutil.copy2(sidecar, dest_dir / sidecar.name)
-    else:
-        shutil.copy2(src, dest_dir / src.name)
-    return f"inputs/{src.name}"
+#: What the inputs are recorded as instead of their paths (see :func:`inputs_recorded_as`).
+_INPUT_LABEL: ContextVar[str | None] = ContextVar("pmap_input_label", default=None)
+
+
+@contextmanager
+def inputs_recorded_as(label: str) -> Iterator[None]:
+    """Within the block, record the run's inputs as ``label <file name>``, not their paths.
+
+    For inputs that do not outlive the run, such as the demo's temporary files: summary.json
+    and manifest.json then name ``label`` and the copies in the output's ``inputs/``,
+    which do outlive it.
+    """
+    token = _INPUT_LABEL.set(label)
+    try:
+        yield
+    finally:
+        _INPUT_LABEL.reset(token)
+
+
+def output_timestamp(config: Any) -> datetime:
+    """The date written where an output format stores one (GeoPackage, Shapefile DBF header).
+
+    Midnight UTC of the field's sampling date (``field.sampling_date``) when it is an ISO
+    date between 1900 and 2155 (the DBF header's range), else
+    :data:`pmap.io.vectors.DEFAULT_TIMESTAMP` (1970-01-01T00:00:00Z).  Never the wall
+    clock, so the same inputs give the same bytes.
+    """
+    try:
+        day = date.fromisoformat(str(config.field.sampling_date).strip())
+    except ValueError:
+        return vectors.DEFAULT_TIMESTAMP
+    if not 1900 <= day.year <= 2155:
+        return vectors.DEFAULT_TIMESTAMP
+    return datetime(day.year, day.month, day.day, tzinfo=timezone.utc)
+
+
+def _input_source(path: Path) -> str:
+    """How an input is named in the records: its path as given, or the label and its name."""
+    label = _INPUT_LABEL.get()
+    return f"{label} {path.name}" if label else str(path)
+
+
+def _copy_input(src: Path, dest_dir: Path, root: Path) -> list[dict[str, Any]]:
+    """Copy one input (a Shapefile with its sidecars) into ``dest_dir``; what was copied.
+
+    Returns
+    -------
+    list of dict
+        One record per file copied: ``path`` (POSIX, relative to ``root``), ``sha256`` and
+        ``bytes`` of the copy.
+    """
+    dest_dir.mkdir(parents=True, exist_ok=True)
+    parts = vectors.shapefile_parts(src) if src.suffix.lower() == ".shp" else [src]
+    records = []
+    for part in parts:
+        target = dest_dir / part.name
+        shutil.copyfile(part, target)
+        records.append({"path": target.relative_to(root).as_posix(), **file_record(target)})
+    return records
 
 
 def _provenance(result: FieldResult, name: str) -> dict[str, str]:
@@ -245,13 +246,22 @@ def write_outputs(
     samples_path: Path,
     boundary_path: Path,
     config_path: Path | None,
+    transaction: OutputTransaction | None = None,
 ) -> None:
-    """Write every output of ``result`` into ``result.out_dir`` atomically."""
+    """Write every output of ``result`` into ``result.out_dir`` atomically.
+
+    ``transaction`` is the one :func:`check_output_dir` returned for the run; without it
+    the directory is checked here (``overwrite`` false).  A failed write raises
+    :class:`~pmap.errors.OutputError` and leaves no output (an old one stays as it was).
+    """
     from pmap.report import maps
 
     out_dir = result.out_dir
-    tmp = staging_dir(out_dir)
+    if transaction is None:
+        transaction = check_output_dir(
+            out_dir, False, [p for p in (samples_path, boundary_path, config_path) if p])
     try:
+        tmp = transaction.staging
         outputs: dict[str, str] = {}
         grid = result.grid
         (tmp / "rasters").mkdir()
@@ -293,34 +303,51 @@ def write_outputs(
         polygons = vectors.patch_polygons(
             result.patch_labels, [p["class_id"] for p in result.patches], grid)
         frame = vectors.zone_frame(polygons, result.patches, grid.crs)
-        vectors.write_geopackage(tmp / "rate_zones.gpkg", frame)
+        stamp = output_timestamp(result.config)
+        vectors.write_geopackage(tmp / "rate_zones.gpkg", frame, timestamp=stamp)
         outputs["rate_zones.gpkg"] = "rate-zone polygons (layer rate_zones) with class, area, rate"
         vectors.write_geojson_wgs84(tmp / "rate_zones.geojson", frame)
         outputs["rate_zones.geojson"] = "the same polygons in WGS84 GeoJSON"
-        vectors.write_shapefile(tmp / "shapefile" / "rate_zones.shp", frame)
+        vectors.write_shapefile(tmp / "shapefile" / "rate_zones.shp", frame, timestamp=stamp)
         outputs["shapefile/rate_zones.shp"] = "the same polygons as a Shapefile (10-character field names)"
 
-        copied = {
-            "samples": _copy_input(samples_path, tmp / "inputs"),
-            "boundary": _copy_input(boundary_path, tmp / "inputs"),
-        }
-        if config_path is not None:
-            copied["config"] = _copy_input(config_path, tmp / "inputs")
-        outputs["inputs/"] = "copies of the input files this run read"
+        given = {"samples": samples_path, "boundary": boundary_path, "config": config_path}
+        sources = {kind: _input_source(path) if path is not None else None
+                   for kind, path in given.items()}
+        copied = {kind: _copy_input(path, tmp / "inputs" / kind, tmp)
+                  for kind, path in given.items() if path is not None}
+        outputs["inputs/"] = ("copies of the input files this run read: inputs/samples/, "
+                              "inputs/boundary/ (with a Shapefile's sidecars), inputs/config/")
         outputs["summary.json"] = "everything above in numbers, with the cautions"
-        summary = _summary(result, inputs, samples_path, boundary_path, config_path, copied,
-                           outputs)
+        outputs["manifest.json"] = ("pmap version, configuration, warnings, and the SHA-256 "
+                                    "and size of every input read and every file written")
+        summary = _summary(result, inputs, sources, copied, outputs)
         (tmp / "summary.json").write_text(
             json.dumps(_json_safe(summary), indent=2) + "\n", encoding="utf-8")
+        write_manifest(tmp, _json_safe({
+            "pmap_version": __version__,
+            "field": result.config.field.name,
+            "format_timestamp_utc": stamp.isoformat(),
+            "config": result.config.as_dict(),
+            "inputs": {kind: {"source": sources[kind], "files": records}
+                       for kind, records in copied.items()},
+            "warnings": list(result.warnings),
+        }))
         result.summary = summary
         result.outputs = outputs
-        publish(tmp, out_dir)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
+        transaction.publish()
+    except BaseException as exc:
+        transaction.fail(exc)  # removes the staging directory; a failed write -> OutputError
         raise
 
 
-def _summary(result, inputs, samples_path, boundary_path, config_path, copied, outputs):
+def _as_written(array: np.ndarray, grid: Any) -> np.ndarray:
+    """The finite values of a float layer inside the field as its GeoTIFF stores them (float32)."""
+    values = np.asarray(array, dtype=np.float32)[grid.mask].astype(np.float64)
+    return values[np.isfinite(values)]
+
+
+def _summary(result, inputs, sources, copied, outputs):
     grid = result.grid
     t = grid.transform
     props = {}
@@ -328,11 +355,12 @@ def _summary(result, inputs, samples_path, boundary_path, config_path, copied, o
         entry = interp.as_dict()
         entry["unit"] = layer_info(name).unit
         entry["n_samples"] = interp.cv.n
-        finite = interp.result.estimate
-        entry["map_min"] = float(np.nanmin(finite))
-        entry["map_mean"] = float(np.nanmean(finite))
-        entry["map_max"] = float(np.nanmax(finite))
-        entry["mean_kriging_variance"] = float(np.nanmean(interp.result.variance))
+        written = _as_written(result.layers[name], grid)  # clipped to physical limits
+        variance = _as_written(result.layers[f"{name}_variance"], grid)
+        entry["map_min"] = float(written.min()) if written.size else None
+        entry["map_mean"] = float(written.mean()) if written.size else None
+        entry["map_max"] = float(written.max()) if written.size else None
+        entry["mean_kriging_variance"] = float(variance.mean()) if variance.size else None
         props[name] = entry
     mech = result.layers["fixation_mechanism"]
     risk_class = result.layers["fixation_class"]
@@ -356,20 +384,21 @@ def _summary(result, inputs, samples_path, boundary_path, config_path, copied, o
                              "mapped; fixation risk comes from pH alone")
     return {
         "pmap_version": __version__,
-        "created_utc": datetime.now(timezone.utc).replace(microsecond=0).isoformat(),
         "field": {
             "name": result.config.field.name, "farm": result.config.field.farm,
             "sampling_date": result.config.field.sampling_date,
             "sampling_depth_cm": result.config.field.sampling_depth_cm,
         },
         "inputs": {
-            "samples": str(samples_path), "boundary": str(boundary_path),
-            "config": str(config_path) if config_path else None, "copies": copied,
+            "samples": sources["samples"], "boundary": sources["boundary"],
+            "config": sources["config"], "copies": copied,
+            "notes": list(getattr(inputs, "notes", ())),
             "n_samples_read": inputs.n_read, "n_samples_used": len(inputs.samples.ids),
             "samples_left_out_outside_boundary": list(inputs.dropped_outside),
             "soil_test_p_method": inputs.samples.stp_method,
         },
         "crs": grid.crs,
+        "working_crs": dict(getattr(inputs, "crs_choice", {})),
         "grid": {
             "cell_size_m": grid.cell_size, "width": grid.width, "height": grid.height,
             "transform": [t.a, t.b, t.c, t.d, t.e, t.f], "bounds": list(grid.bounds),

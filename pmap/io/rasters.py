@@ -2,7 +2,9 @@
 
 :func:`write_cog` writes a GTiff in memory with band description, unit, tags and (for
 class rasters) a colour table, then copies it with GDAL's COG driver to a temporary file
-beside the target and renames it into place, so a reader never sees half a file.
+beside the target and renames it into place, so a reader never sees half a file.  The
+same array, grid and tags give the same bytes: GDAL writes a TIFF date (``TIFFTAG_DATETIME``)
+only when asked, and pmap never asks.
 """
 
 from __future__ import annotations

@@ -3,6 +3,11 @@
 Each 4-connected patch of one class becomes one polygon ("zone"), numbered 1..n in the
 order :func:`zone_polygons` returns them; :func:`patch_labels` gives the matching label
 raster so per-zone statistics can be taken from any layer on the same grid.
+
+The writers are deterministic: the same frame gives the same bytes.  Where a format
+stores a date (the GeoPackage's ``gpkg_contents.last_change``, the Shapefile's DBF header)
+the caller's ``timestamp`` is written, by default :data:`DEFAULT_TIMESTAMP`, never the
+wall clock; the GeoJSON ``"name"`` member is the target's stem, never a temporary name.
 """
 
 from __future__ import annotations
@@ -10,7 +15,9 @@ from __future__ import annotations
 import os
 import shutil
 import tempfile
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
@@ -25,6 +32,9 @@ from pmap.prescribe.zones import label_patches
 __all__ = [
     "ZONE_FIELDS",
     "SHAPEFILE_FIELDS",
+    "SHAPEFILE_SUFFIXES",
+    "DEFAULT_TIMESTAMP",
+    "shapefile_parts",
     "patch_labels",
     "zone_polygons",
     "patch_polygons",
@@ -62,6 +72,17 @@ SHAPEFILE_FIELDS: dict[str, str] = {
     "product_kg_ha": "PROD_KGHA",
     "product_total_kg": "PROD_TOTKG",
 }
+
+#: Suffixes of a Shapefile's component files, matched in any case after the exact stem:
+#: geometry, index, attributes, CRS, code page, and the spatial/attribute indexes and
+#: metadata other programs keep beside them.
+SHAPEFILE_SUFFIXES: tuple[str, ...] = (
+    ".shp", ".shx", ".dbf", ".prj", ".cpg", ".qix", ".sbn", ".sbx", ".fbn", ".fbx",
+    ".ain", ".aih", ".atx", ".ixs", ".mxs", ".shp.xml",
+)
+
+#: Date written where a vector format stores one and the caller gives none (Unix epoch).
+DEFAULT_TIMESTAMP: datetime = datetime(1970, 1, 1, tzinfo=timezone.utc)
 
 Attributes = Sequence[Mapping[str, Any]] | Mapping[int, Mapping[str, Any]] | Callable[[int, int], Mapping[str, Any]]
 
@@ -164,24 +185,78 @@ def zone_frame(patches: Sequence[tuple[BaseGeometry, int]], attributes: Attribut
 
 
 def write_zone_polygons(path: str | Path, patches: Sequence[tuple[BaseGeometry, int]],
-                        attributes: Attributes | None, crs: str, *, layer: str = "rate_zones") -> Path:
+                        attributes: Attributes | None, crs: str, *, layer: str = "rate_zones",
+                        timestamp: datetime | None = None) -> Path:
     """Write the zones as a GeoPackage layer (default ``rate_zones``) with long field names.
 
-    See :func:`zone_frame` for ``attributes``.  Replaces ``path`` atomically.
+    See :func:`zone_frame` for ``attributes`` and :func:`write_geopackage` for
+    ``timestamp``.  Replaces ``path`` atomically.
     """
-    return write_geopackage(path, zone_frame(patches, attributes, crs), layer=layer)
+    return write_geopackage(path, zone_frame(patches, attributes, crs), layer=layer,
+                            timestamp=timestamp)
 
 
-def write_geopackage(path: str | Path, gdf, *, layer: str = "rate_zones") -> Path:
-    """Write a zone table (e.g. from :func:`zone_frame`) as a GeoPackage layer, atomically."""
-    return _write_atomic(path, gdf, driver="GPKG", layer=layer)
+def shapefile_parts(path: str | Path) -> list[Path]:
+    """The component files of a Shapefile that exist: ``path`` and its sidecars, sorted.
+
+    A sidecar has exactly the stem of ``path`` and one of :data:`SHAPEFILE_SUFFIXES` in
+    any case (``field.PRJ`` belongs to ``field.shp``).  Names are compared as strings,
+    never used as glob patterns, so brackets or asterisks in a name are harmless.
+    """
+    path = Path(path)
+    stem = path.name[: -len(path.suffix)] if path.suffix else path.name
+    parts = []
+    for entry in path.parent.iterdir():
+        name = entry.name
+        if (name.startswith(stem) and name[len(stem):].lower() in SHAPEFILE_SUFFIXES
+                and entry.is_file()):
+            parts.append(entry)
+    return sorted(parts, key=lambda p: p.name)
 
 
-def write_shapefile(path: str | Path, gdf) -> Path:
+def _utc(timestamp: datetime | None) -> datetime:
+    timestamp = DEFAULT_TIMESTAMP if timestamp is None else timestamp
+    if timestamp.tzinfo is None:
+        raise ValueError("timestamp must be timezone-aware (e.g. datetime(..., tzinfo=timezone.utc))")
+    return timestamp.astimezone(timezone.utc)
+
+
+@contextmanager
+def _gdal_config(name: str, value: str) -> Iterator[None]:
+    """Set a GDAL configuration option of pyogrio's GDAL for a block, then restore it.
+
+    GDAL configuration options are process-wide; pmap writes one file at a time.
+    """
+    import pyogrio
+
+    old = pyogrio.get_gdal_config_option(name)
+    pyogrio.set_gdal_config_options({name: value})
+    try:
+        yield
+    finally:
+        pyogrio.set_gdal_config_options({name: old})
+
+
+def write_geopackage(path: str | Path, gdf, *, layer: str = "rate_zones",
+                     timestamp: datetime | None = None) -> Path:
+    """Write a zone table (e.g. from :func:`zone_frame`) as a GeoPackage layer, atomically.
+
+    ``timestamp`` (timezone-aware; default :data:`DEFAULT_TIMESTAMP`) is written as the
+    layer's ``gpkg_contents.last_change`` through GDAL's ``OGR_CURRENT_DATE`` option, so
+    the same table gives the same bytes.
+    """
+    stamp = _utc(timestamp)
+    gpkg_date = stamp.strftime("%Y-%m-%dT%H:%M:%S.") + f"{stamp.microsecond // 1000:03d}Z"
+    with _gdal_config("OGR_CURRENT_DATE", gpkg_date):
+        return _write_atomic(path, gdf, driver="GPKG", layer=layer)
+
+
+def write_shapefile(path: str | Path, gdf, *, timestamp: datetime | None = None) -> Path:
     """Write a zone table as a Shapefile with the 10-character :data:`SHAPEFILE_FIELDS` names.
 
     All component files (.shp, .shx, .dbf, .prj, .cpg) are written in a temporary folder
-    beside ``path`` and then moved into place.
+    beside ``path`` and then moved into place.  The DBF header's last-update date is the
+    date of ``timestamp`` in UTC (default :data:`DEFAULT_TIMESTAMP`), not today's.
     """
     path = Path(path)
     renamed = gdf.rename(columns=SHAPEFILE_FIELDS)
@@ -191,7 +266,8 @@ def write_shapefile(path: str | Path, gdf) -> Path:
     path.parent.mkdir(parents=True, exist_ok=True)
     tmp_dir = Path(tempfile.mkdtemp(prefix=f".{path.stem}.", dir=path.parent))
     try:
-        renamed.to_file(tmp_dir / path.name, driver="ESRI Shapefile", engine="pyogrio")
+        renamed.to_file(tmp_dir / path.name, driver="ESRI Shapefile", engine="pyogrio",
+                        DBF_DATE_LAST_UPDATE=_utc(timestamp).strftime("%Y-%m-%d"))
         for part in sorted(tmp_dir.iterdir()):
             os.replace(part, path.with_suffix(part.suffix))
     finally:
@@ -200,11 +276,14 @@ def write_shapefile(path: str | Path, gdf) -> Path:
 
 
 def write_geojson_wgs84(path: str | Path, gdf) -> Path:
-    """Write ``gdf`` reprojected to WGS 84 (EPSG:4326) as GeoJSON, atomically."""
-    return _write_atomic(path, gdf.to_crs("EPSG:4326"), driver="GeoJSON", layer=None)
+    """Write ``gdf`` reprojected to WGS 84 (EPSG:4326) as GeoJSON, atomically.
+
+    The collection's ``"name"`` member is the stem of ``path`` (``rate_zones``).
+    """
+    return _write_atomic(path, gdf.to_crs("EPSG:4326"), driver="GeoJSON", layer=Path(path).stem)
 
 
-def _write_atomic(path: str | Path, gdf, *, driver: str, layer: str | None) -> Path:
+def _write_atomic(path: str | Path, gdf, *, driver: str, layer: str) -> Path:
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp_name = tempfile.mkstemp(prefix=f".{path.name}.", suffix=f".tmp{path.suffix}", dir=path.parent)
@@ -212,8 +291,7 @@ def _write_atomic(path: str | Path, gdf, *, driver: str, layer: str | None) -> P
     tmp = Path(tmp_name)
     tmp.unlink()  # GDAL creates the file itself; an empty file would not be a valid GeoPackage
     try:
-        kwargs = {"layer": layer} if layer else {}
-        gdf.to_file(tmp, driver=driver, engine="pyogrio", **kwargs)
+        gdf.to_file(tmp, driver=driver, engine="pyogrio", layer=layer)
         os.replace(tmp, path)
     finally:
         if tmp.exists():

@@ -280,7 +280,9 @@ def _save(fig, path_png: str | Path) -> Path:
     os.close(fd)
     tmp = Path(tmp_name)
     try:
-        fig.savefig(tmp, format="png", dpi=_DPI)
+        # Deterministic metadata: no "Software" text chunk naming matplotlib's version, and
+        # matplotlib writes no PNG date unless asked for one.
+        fig.savefig(tmp, format="png", dpi=_DPI, metadata={"Software": None})
         os.replace(tmp, path)
     finally:
         if tmp.exists():

@@ -30,7 +30,8 @@ def test_every_output_exists(demo_run):
     for name in ("ph", "total_p", "stp"):
         assert (out / "maps" / f"variogram_{name}.png").is_file()
     for name in ("rate_zones.gpkg", "rate_zones.geojson", "shapefile/rate_zones.shp", "summary.json",
-                 "inputs/samples.csv", "inputs/boundary.geojson", "inputs/field.toml"):
+                 "inputs/samples/samples.csv", "inputs/boundary/boundary.geojson",
+                 "inputs/config/field.toml", "manifest.json"):
         assert (out / name).is_file(), name
     assert not list(out.parent.glob(".*partial*")), "staging directory left behind"
 

@@ -113,3 +113,19 @@ def test_class_colours_are_ordered_dark_to_light():
     colours = class_colours([3, 1, 2])
     brightness = [sum(colours[k][:3]) for k in (1, 2, 3)]
     assert brightness == sorted(brightness) and len(set(brightness)) == 3
+
+
+def test_same_layer_gives_the_same_bytes_and_no_tiff_date(tmp_path):
+    grid = _grid()
+    values = np.linspace(5, 50, grid.width * grid.height).reshape(grid.shape)
+    zones = np.where(values > 20, 2, 1).astype(np.uint8)
+    tags = {"METHOD": "ordinary kriging"}
+    for run in ("a", "b"):
+        write_cog(tmp_path / run / "stp.tif", values, grid, description="d", unit="mg/kg", tags=tags)
+        write_cog(tmp_path / run / "zones.tif", zones, grid, description="z", unit="class",
+                  class_labels={1: "low", 2: "high"})
+    for name in ("stp.tif", "zones.tif"):
+        assert (tmp_path / "a" / name).read_bytes() == (tmp_path / "b" / name).read_bytes(), name
+        with rasterio.open(tmp_path / "a" / name) as src:
+            # Source: GDAL GTiff driver docs (the TIFF DateTime tag is the TIFFTAG_DATETIME item)
+            assert "TIFFTAG_DATETIME" not in src.tags()

@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import json
+import sqlite3
+from datetime import datetime, timedelta, timezone
+
 import geopandas as gpd
 import numpy as np
 import pytest
@@ -12,7 +16,9 @@ from pmap.io.vectors import (
     SHAPEFILE_FIELDS,
     ZONE_FIELDS,
     patch_labels,
+    shapefile_parts,
     write_geojson_wgs84,
+    write_geopackage,
     write_shapefile,
     write_zone_polygons,
     zone_frame,
@@ -101,3 +107,60 @@ def test_shapefile_short_names_and_geojson_wgs84(tmp_path):
     ll = gpd.read_file(gj)
     assert ll.crs.to_epsg() == 4326
     np.testing.assert_allclose(ll.to_crs(UTM).area.sum(), gdf.area.sum(), rtol=1e-6)
+
+
+def test_shapefile_parts_by_stem_and_suffix_not_glob(tmp_path):
+    names = ["North [2026].shp", "North [2026].shx", "North [2026].DBF", "North [2026].Prj",
+             "North [2026].cpg", "North [2026].shp.xml",
+             "North [2026].csv",   # same stem, not a Shapefile part
+             "North 2.dbf",        # what the glob pattern "North [2026].*" would match
+             "North [2026]b.dbf",  # a longer stem
+             "north [2026].prj"]   # another stem on a case-sensitive file system
+    for name in names:
+        (tmp_path / name).write_bytes(name.encode())
+    (tmp_path / "North [2026].qix").mkdir()  # a directory is not a part
+    found = [p.name for p in shapefile_parts(tmp_path / "North [2026].shp")]
+    assert found == sorted(["North [2026].shp", "North [2026].shx", "North [2026].DBF",
+                            "North [2026].Prj", "North [2026].cpg", "North [2026].shp.xml"])
+
+
+def _frame():
+    grid, zones = _zones()
+    return zone_frame(zone_polygons(zones, grid), {1: {"class_label": "low"}}, UTM)
+
+
+def test_vector_files_hold_the_given_timestamp_not_the_clock(tmp_path):
+    gdf = _frame()
+    stamp = datetime(2026, 10, 14, 6, 30, 5, 250_000, tzinfo=timezone(timedelta(hours=2)))
+    gpkg = write_geopackage(tmp_path / "rate_zones.gpkg", gdf, timestamp=stamp)
+    with sqlite3.connect(gpkg) as con:
+        (last_change,) = con.execute("SELECT last_change FROM gpkg_contents").fetchone()
+    # Source: OGC GeoPackage Encoding Standard (OGC 12-128), gpkg_contents.last_change is an
+    # ISO 8601 UTC timestamp "YYYY-MM-DDTHH:MM:SS.SSSZ"
+    assert last_change == "2026-10-14T04:30:05.250Z"
+    shp = write_shapefile(tmp_path / "shp" / "rate_zones.shp", gdf, timestamp=stamp)
+    # Source: dBASE III file header (bytes 1-3: year - 1900, month, day of the last update)
+    assert shp.with_suffix(".dbf").read_bytes()[1:4] == bytes([126, 10, 14])
+    write_shapefile(tmp_path / "default" / "rate_zones.shp", gdf)
+    assert (tmp_path / "default" / "rate_zones.dbf").read_bytes()[1:4] == bytes([70, 1, 1])
+    gj = write_geojson_wgs84(tmp_path / "rate_zones.geojson", gdf)
+    # Source: GDAL GeoJSON driver docs (the layer name is written as the "name" member)
+    assert json.loads(gj.read_text())["name"] == "rate_zones"
+    with pytest.raises(ValueError, match="timezone-aware"):
+        write_geopackage(tmp_path / "naive.gpkg", gdf, timestamp=datetime(2026, 1, 1))
+    import pyogrio
+
+    assert pyogrio.get_gdal_config_option("OGR_CURRENT_DATE") is None  # restored
+
+
+def test_same_frame_gives_the_same_bytes(tmp_path):
+    gdf = _frame()
+    for run in ("a", "b"):
+        write_geopackage(tmp_path / run / "rate_zones.gpkg", gdf)
+        write_geojson_wgs84(tmp_path / run / "rate_zones.geojson", gdf)
+        write_shapefile(tmp_path / run / "shp" / "rate_zones.shp", gdf)
+    files_a = sorted(p.relative_to(tmp_path / "a") for p in (tmp_path / "a").rglob("*") if p.is_file())
+    files_b = sorted(p.relative_to(tmp_path / "b") for p in (tmp_path / "b").rglob("*") if p.is_file())
+    assert files_a == files_b and len(files_a) == 7  # gpkg, geojson, shp/shx/dbf/prj/cpg
+    for rel in files_a:
+        assert (tmp_path / "a" / rel).read_bytes() == (tmp_path / "b" / rel).read_bytes(), rel
