@@ -1,7 +1,8 @@
 """Which column of a lab's sample table holds what: the ``[samples]`` section and header detection.
 
 Headers are compared in a compact form: lower case, without blanks or punctuation and
-without a unit suffix such as ``_ppm`` or ``_mg_kg``.  Each property has a list of
+without the unit they name (``Total P (%)``, ``p_m3_ppm``, ``clay [g/kg]``: see
+:mod:`pmap.io.units`, which also converts the values).  Each property has a list of
 candidate names in priority order; a column the user names in :class:`SampleColumns`
 always wins.  The soil-test P method is taken from the config or inferred from the name of
 the soil-test P column (``p_m3`` -> ``mehlich3_icp``, ``bray1_p`` -> ``bray1``, ...).
@@ -18,9 +19,10 @@ from typing import Any
 
 import pandas as pd
 
-from pmap._checks import check_choice
+from pmap._checks import check_choice, check_number
 from pmap.errors import ConfigError, InputError, PmapWarning
 from pmap.io.crs import normalise_crs
+from pmap.io.units import split_unit
 from pmap.soil.conversions import SOIL_TEST_METHODS
 
 __all__ = [
@@ -30,15 +32,13 @@ __all__ = [
     "find_property_columns",
     "find_id_column",
     "stp_method_of",
+    "is_recognised_header",
 ]
 
 #: Soil-test P extraction methods pmap knows.
 STP_METHODS: tuple[str, ...] = SOIL_TEST_METHODS
 
-_MG_KG_SUFFIX = re.compile(r"_(ppm|mg_kg|mgkg|mg_per_kg|pct|percent)$")
-_LB_SUFFIX = re.compile(r"_(lbs?_?(ac|a|acre))$")
-
-# Compact (lower case, no separators, unit suffix removed) header names, in priority order.
+# Compact (lower case, no separators, unit removed) header names, in priority order.
 _LAT = ("latitude", "lat", "latdd", "latdeg")
 _LON = ("longitude", "lon", "long", "lng", "londd", "londeg")
 _X = ("x", "easting", "east", "xcoord", "utmx", "utme")
@@ -67,6 +67,12 @@ _OPTIONAL = {
     "buffer_ph": ("bufferph", "bph", "phbuffer", "buffer"),
 }
 
+_KNOWN: frozenset[str] = frozenset(
+    _LAT + _LON + _X + _Y + _ID + _PH_WATER + _PH_SALT + _TOTAL_P + _STP_GENERIC
+    + tuple(n for names in _STP_NAMED.values() for n in names)
+    + tuple(n for names in _OPTIONAL.values() for n in names)
+)
+
 
 def _column(doc: str) -> Any:
     """A ``str | None`` column field, unset by default, with its documentation."""
@@ -78,7 +84,7 @@ class SampleColumns:
     """Which columns of the samples file hold what (config section ``[samples]``).
 
     Every column name left unset is found by matching common header names, ignoring case,
-    blanks, punctuation and a unit suffix such as ``_ppm`` or ``_mg_kg``.
+    blanks, punctuation and the unit the header names (``(%)``, ``_ppm``, ``[g/kg]``).
     """
 
     x_column: str | None = _column(
@@ -98,10 +104,18 @@ class SampleColumns:
     stp_method: str | None = _column(
         "soil-test P method: mehlich3_icp, mehlich3_colorimetric, bray1 or olsen; unset: "
         "inferred from the column name")
+    duplicate_tolerance_m: float | None = field(default=None, metadata={
+        "unit": "m",
+        "doc": "samples closer than this are merged like exact duplicates (values averaged, "
+        "with a warning); unset: a quarter of grid.cell_size_m",
+        "source": "common practice, no source"})
 
     def __post_init__(self) -> None:
         if self.stp_method is not None:
             check_choice("samples.stp_method", self.stp_method, STP_METHODS)
+        if self.duplicate_tolerance_m is not None:
+            check_number("samples.duplicate_tolerance_m", self.duplicate_tolerance_m, ge=0,
+                         finite=True)
         if (self.x_column is None) != (self.y_column is None):
             raise ConfigError("samples.x_column and samples.y_column must be set together")
 
@@ -132,7 +146,7 @@ def find_coordinate_columns(
               _named(path, frame, columns.y_column, "y_column"))
         if crs is not None:
             return xy, normalise_crs(crs)
-        if _compact(xy[0])[0] in _LON and _compact(xy[1])[0] in _LAT:
+        if _compact(xy[0]) in _LON and _compact(xy[1]) in _LAT:
             return xy, "EPSG:4326"
         return xy, _no_crs(path, frame, xy)
     lon, lat = _find(frame, _LON), _find(frame, _LAT)
@@ -159,8 +173,8 @@ def find_property_columns(
     Raises
     ------
     pmap.errors.InputError
-        No pH column, no P column (total or soil-test), several soil-test P columns, a named
-        column that is missing, or a column in lb/acre.
+        No pH column, no P column (total or soil-test), several soil-test P columns or a
+        named column that is missing.
     """
     found: dict[str, str] = {}
     taken = set(exclude)
@@ -172,7 +186,7 @@ def find_property_columns(
 
     if columns.ph_column is not None:
         claim("ph", _named(path, frame, columns.ph_column, "ph_column"))
-        if _compact(found["ph"])[0] in _PH_SALT:
+        if _compact(found["ph"]) in _PH_SALT:
             _warn_salt(path, found["ph"])
     else:
         claim("ph", _find(frame, _PH_WATER, taken))
@@ -201,13 +215,6 @@ def find_property_columns(
         )
     for key, names in _OPTIONAL.items():
         claim(key, _find(frame, names, taken))
-    for key, col in found.items():
-        if _compact(col)[1]:
-            raise InputError(
-                f"{path.name}: column {col!r} ({key}) looks like lb/acre; pmap reads P and "
-                "nutrients in mg/kg (ppm): convert the column (lb/acre / 2 for a 2-million-lb "
-                "furrow slice) and rename it"
-            )
     return found
 
 
@@ -249,19 +256,27 @@ def stp_method_of(path: Path, found: dict[str, str], columns: SampleColumns) -> 
     return method
 
 
-def _compact(name: str) -> tuple[str, bool]:
-    """Compact form of a header and whether it carries a lb/acre unit suffix."""
-    s = str(name).strip().lower().replace("%", "_pct").replace("µ", "u")
-    s = re.sub(r"[^0-9a-z]+", "_", s).strip("_")
-    is_lb = bool(_LB_SUFFIX.search(s))
-    s = _LB_SUFFIX.sub("", s)
-    s = _MG_KG_SUFFIX.sub("", s)
-    return s.replace("_", ""), is_lb
+def is_recognised_header(name: str, columns: SampleColumns = SampleColumns()) -> bool:
+    """Whether a header is one pmap knows (a coordinate, id, pH, P or optional property
+    name, or a column named in ``columns``); used to find the header line of a table."""
+    named = {getattr(columns, f) for f in ("x_column", "y_column", "id_column", "ph_column",
+                                           "total_p_column", "stp_column")}
+    named = {n.strip().lower() for n in named if n}
+    if str(name).strip().lower() in named:
+        return True
+    return _compact(name) in _KNOWN
+
+
+def _compact(name: str) -> str:
+    """Compact form of a header: its name without the unit (:func:`~pmap.io.units.split_unit`),
+    lower case, without blanks or punctuation."""
+    s = split_unit(name)[0].lower().replace("µ", "u")
+    return re.sub(r"[^0-9a-z]+", "", s)
 
 
 def _find(frame: pd.DataFrame, candidates: Sequence[str], exclude: Iterable[str] = ()) -> str | None:
     excluded = set(exclude)
-    compact = {c: _compact(c)[0] for c in frame.columns if c not in excluded}
+    compact = {c: _compact(c) for c in frame.columns if c not in excluded}
     for cand in candidates:
         for col, key in compact.items():
             if key == cand:
@@ -320,7 +335,7 @@ def _auto_stp(path: Path, frame: pd.DataFrame, columns: SampleColumns, taken: se
 
 
 def _infer_method(col: str) -> str | None:
-    key = _compact(col)[0]
+    key = _compact(col)
     for method, names in _STP_NAMED.items():
         if key in names:
             return method

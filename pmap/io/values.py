@@ -9,11 +9,16 @@ Value rules (one place, so the docs can quote them):
   ``1,234`` is read as a thousands separator (1234);
 * ``<5``-style values below detection become half the detection limit (2.5), with one
   :class:`~pmap.errors.PmapWarning` per column (common practice, no source);
+* ``nan`` is missing (it is how numpy and pandas write a missing value), but ``inf``,
+  ``-inf``, ``infinity``, ``-nan(ind)``, ``1.#INF``, spreadsheet errors (``#DIV/0!``) and
+  numbers too large for a float (``1e400``, read as infinity) or too small (``1e-400``,
+  read as 0) are an :class:`~pmap.errors.InputError` that says what they are;
 * anything else that is not a number is an :class:`~pmap.errors.InputError`.
 """
 
 from __future__ import annotations
 
+import math
 import re
 import warnings
 
@@ -29,8 +34,13 @@ MISSING_MARKERS: frozenset[str] = frozenset(
     {"", "-", "--", "na", "n/a", "n.a.", "nd", "n.d.", "n.d", "nan", "null", "none"}
 )
 
-_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?")
-_THOUSANDS = re.compile(r"[+-]?\d{1,3}(,\d{3})+")
+_NUMBER = re.compile(r"[+-]?(\d+\.?\d*|\.\d+)([eE][+-]?\d+)?", re.ASCII)
+_THOUSANDS = re.compile(r"[+-]?\d{1,3}(,\d{3})+", re.ASCII)
+# What programs write for infinity and not-a-number (C, Python, R, MSVC, spreadsheets).
+_INFINITE = re.compile(r"[+-]?(inf|infinity|1\.#inf\d*)", re.IGNORECASE)
+_NOT_A_NUMBER = re.compile(r"[+-]?(nan\(\w*\)|-nan|\+nan|1\.#(qnan|snan|ind)\d*)",
+                           re.IGNORECASE)
+_SHEET_ERROR = re.compile(r"#(div/0|num|value|ref|name\?|n/a|null|calc|spill)!?", re.IGNORECASE)
 
 
 def parse_number(text: str, *, thousands_commas: bool) -> float | None:
@@ -95,15 +105,29 @@ class ValueParser:
             A value that is not a number; the message names the rows and values.
         """
         if pd.api.types.is_numeric_dtype(series) and not pd.api.types.is_bool_dtype(series):
-            return series.to_numpy(dtype=np.float64, na_value=np.nan)
+            out = series.to_numpy(dtype=np.float64, na_value=np.nan)
+            infinite = np.isinf(out)
+            if infinite.any():
+                shown = ", ".join(f"{int(r)} ({v:g})" for r, v in
+                                  zip(self.rows[infinite][:5], out[infinite][:5], strict=True))
+                raise InputError(
+                    f"{self.file_name}: column {column!r} holds infinite values in rows "
+                    f"{shown}{_more(int(infinite.sum()))}: infinity is not a measurement; write "
+                    "the measured value, or leave the cell empty if there is none"
+                )
+            return out
         out = np.full(len(series), np.nan)
         bad: list[tuple[int, str]] = []
+        odd: list[tuple[int, str, str]] = []
         below: list[str] = []
         for i, raw in enumerate(series.tolist()):
             if raw is None or (isinstance(raw, float) and np.isnan(raw)):
                 continue
             if isinstance(raw, (int, float)) and not isinstance(raw, bool):
-                out[i] = float(raw)
+                value = float(raw)
+                if math.isinf(value):
+                    odd.append((int(self.rows[i]), repr(raw), "infinity"))
+                out[i] = value
                 continue
             text = str(raw).strip()
             if text.lower() in MISSING_MARKERS:
@@ -111,20 +135,38 @@ class ValueParser:
             if allow_below and text.startswith("<"):
                 limit = parse_number(text[1:].strip(), thousands_commas=self.thousands_commas)
                 if limit is not None and limit >= 0:
+                    why = _not_finite(text[1:].strip(), limit)
+                    if why:
+                        odd.append((int(self.rows[i]), text, why))
+                        continue
                     out[i] = limit / 2.0
                     below.append(text)
                     continue
             value = parse_number(text, thousands_commas=self.thousands_commas)
             if value is None:
-                bad.append((int(self.rows[i]), text))
+                why = _special(text)
+                if why:
+                    odd.append((int(self.rows[i]), text, why))
+                else:
+                    bad.append((int(self.rows[i]), text))
+                continue
+            why = _not_finite(text, value)
+            if why:
+                odd.append((int(self.rows[i]), text, why))
             else:
                 out[i] = value
+        if odd:
+            shown = ", ".join(f"{r} ({v!r}: {why})" for r, v, why in odd[:5])
+            raise InputError(
+                f"{self.file_name}: column {column!r} has values that are not measurements in "
+                f"rows {shown}{_more(len(odd))}: write the measured value, or n.d. for a "
+                "missing one"
+            )
         if bad:
             shown = ", ".join(f"{r} ({v!r})" for r, v in bad[:5])
-            more = f" and {len(bad) - 5} more" if len(bad) > 5 else ""
             raise InputError(
                 f"{self.file_name}: column {column!r} has values that are not numbers in rows "
-                f"{shown}{more}: correct them, or write n.d. for a missing value"
+                f"{shown}{_more(len(bad))}: correct them, or write n.d. for a missing value"
             )
         if below:
             warnings.warn(
@@ -133,3 +175,28 @@ class ValueParser:
                 PmapWarning, stacklevel=3,
             )
         return out
+
+
+def _more(count: int, limit: int = 5) -> str:
+    return f" and {count - limit} more" if count > limit else ""
+
+
+def _special(text: str) -> str:
+    """What a non-number cell is, when it is how a program writes infinity or not-a-number."""
+    if _INFINITE.fullmatch(text):
+        return "infinity"
+    if _NOT_A_NUMBER.fullmatch(text):
+        return "not-a-number, written by a program for a failed calculation"
+    if _SHEET_ERROR.fullmatch(text):
+        return "a spreadsheet formula error"
+    return ""
+
+
+def _not_finite(text: str, value: float) -> str:
+    """Why a parsed number cannot be a measurement: too large (infinity) or too small (0)."""
+    if math.isinf(value):
+        return "too large for a number, it reads as infinity"
+    mantissa = re.split(r"[eE]", text, maxsplit=1)[0]
+    if value == 0.0 and re.search(r"[1-9]", mantissa):
+        return "too small for a number, it reads as 0"
+    return ""

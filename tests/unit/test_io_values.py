@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import re
+
 import numpy as np
 import pandas as pd
 import pytest
@@ -73,3 +75,40 @@ def test_numeric_columns_pass_through():
     parser = ValueParser("lab.csv", np.array([2, 3]), thousands_commas=False)
     out = parser(pd.Series([4, 5]), "ph", allow_below=False)
     assert out.dtype == np.float64 and list(out) == [4.0, 5.0]
+
+
+@pytest.mark.parametrize(
+    ("cell", "said"),
+    [("1e400", "too large for a number, it reads as infinity"),
+     ("-1E+999", "too large for a number, it reads as infinity"),
+     ("1e-400", "too small for a number, it reads as 0"),
+     ("inf", "infinity"), ("+Infinity", "infinity"), ("1.#INF", "infinity"),
+     ("-nan(ind)", "not-a-number"), ("1.#QNAN", "not-a-number"),
+     ("#DIV/0!", "a spreadsheet formula error"), ("#N/A", "a spreadsheet formula error"),
+     ("<1e400", "too large for a number, it reads as infinity")],
+)
+def test_non_finite_cells_are_errors_that_say_what_they_are(cell, said):
+    with pytest.raises(InputError, match=rf"lab\.csv: column 'p_m3' has values that are not "
+                                         rf"measurements in rows 3 \({re.escape(repr(cell))}: "
+                                         rf"{re.escape(said)}"):
+        _parse(["12", cell])
+
+
+def test_zero_and_tiny_numbers_are_values():
+    np.testing.assert_array_equal(_parse(["0", "0.0e5", "1e-300", "-0"]), [0.0, 0.0, 1e-300, 0.0])
+
+
+def test_nan_text_stays_missing():
+    # "nan" is how numpy and pandas write a missing value: a documented missing marker.
+    assert np.isnan(_parse(["nan", "NaN"])).all()
+
+
+def test_infinite_numbers_in_a_numeric_column_are_refused():
+    parser = ValueParser("pts.gpkg", np.array([1, 2, 3]), thousands_commas=False)
+    with pytest.raises(InputError, match=r"pts\.gpkg: column 'ph' holds infinite values in rows "
+                                         r"3 \(-inf\)"):
+        parser(pd.Series([6.0, np.nan, -np.inf]), "ph", allow_below=False)
+
+
+def test_unicode_digits_are_not_numbers():
+    assert parse_number("٣", thousands_commas=False) is None  # Arabic-Indic three
