@@ -1,19 +1,23 @@
-"""Field boundaries: read, repair, dissolve; the field mask of a grid; samples inside.
+"""Field boundaries: read, repair, dissolve; areas; the grid and field mask; samples inside.
 
 A boundary file (GeoJSON, GeoPackage or Shapefile) may hold several polygons and invalid
 rings; :func:`load_boundary` returns one valid (Multi)Polygon in the working CRS.
+:func:`check_field_area` compares the field's area in the working CRS with its geodesic
+area on the WGS 84 ellipsoid, and :func:`grid_for_boundary` refuses a grid too large for
+memory before allocating it.
 """
 
 from __future__ import annotations
 
+import math
 from pathlib import Path
 
 import numpy as np
 import shapely
 from shapely.geometry.base import BaseGeometry
 
-from pmap.errors import InputError
-from pmap.grid import GridSpec
+from pmap.errors import ConfigError, InputError
+from pmap.grid import GridSpec, estimate_grid, estimate_memory_bytes
 from pmap.io.crs import normalise_crs, to_pyproj
 from pmap.io.samples import SampleTable
 
@@ -23,12 +27,22 @@ __all__ = [
     "project_boundary",
     "lonlat_centroid",
     "boundary_lonlat_centroid",
+    "lonlat_geometry",
+    "field_lonlat_points",
+    "geodesic_area_m2",
+    "check_field_area",
+    "AREA_TOLERANCE",
     "field_mask",
     "grid_for_boundary",
     "samples_inside",
 ]
 
 _SUFFIXES = {".geojson", ".json", ".gpkg", ".shp"}
+
+#: Largest accepted relative difference between the field's area in the working CRS and its
+#: geodesic area.  A working CRS within grid.max_scale_error (<= 0.005) misstates areas by
+#: at most about 1 %; common practice, no source.
+AREA_TOLERANCE: float = 0.01
 
 
 def read_boundary(path: str | Path, crs: str | None = None) -> tuple[BaseGeometry, str]:
@@ -157,6 +171,96 @@ def lonlat_centroid(geometry: BaseGeometry, file_crs: str) -> tuple[float, float
     return float(lon), float(lat)
 
 
+def lonlat_geometry(geometry: BaseGeometry, file_crs: str) -> BaseGeometry:
+    """A geometry in longitude, latitude (degrees, WGS 84), x = longitude."""
+    from pyproj import Transformer
+
+    if normalise_crs(file_crs) == "EPSG:4326":
+        return geometry
+    tr = Transformer.from_crs(to_pyproj(file_crs), "EPSG:4326", always_xy=True)
+    return shapely.transform(geometry, lambda xy: np.column_stack(tr.transform(xy[:, 0], xy[:, 1])))
+
+
+def field_lonlat_points(geometry: BaseGeometry, file_crs: str) -> tuple[np.ndarray, np.ndarray]:
+    """Longitudes and latitudes (degrees, WGS 84) of a field's centroid and extent corners.
+
+    The centroid (the one :func:`lonlat_centroid` gives) comes first, then the four corners
+    of the field's longitude/latitude extent: the points at which
+    :func:`pmap.io.crs.choose_working_crs` measures a projection's scale.
+    """
+    lon0, lat0 = lonlat_centroid(geometry, file_crs)
+    west, south, east, north = lonlat_geometry(geometry, file_crs).bounds
+    lon = np.array([lon0, west, east, east, west], dtype=float)
+    lat = np.array([lat0, south, south, north, north], dtype=float)
+    return lon, lat
+
+
+def geodesic_area_m2(geometry: BaseGeometry, file_crs: str) -> float:
+    """Area of a (Multi)Polygon on the WGS 84 ellipsoid (m2), holes subtracted.
+
+    Computed with :meth:`pyproj.Geod.geometry_area_perimeter` on the geometry in
+    longitude/latitude; rings are oriented first (exterior counter-clockwise), since that
+    method signs each ring's area by its orientation.
+    """
+    from pyproj import Geod
+    from shapely.geometry.polygon import orient
+
+    lonlat = lonlat_geometry(geometry, file_crs)
+    geod = Geod(ellps="WGS84")
+    parts = lonlat.geoms if hasattr(lonlat, "geoms") else [lonlat]
+    total = 0.0
+    for part in parts:
+        if part.geom_type == "Polygon" and not part.is_empty:
+            total += geod.geometry_area_perimeter(orient(part, sign=1.0))[0]
+    return float(total)
+
+
+def check_field_area(boundary: BaseGeometry, working_crs: str, geodesic_m2: float,
+                     name: str = "boundary", tolerance: float = AREA_TOLERANCE) -> dict[str, float]:
+    """Compare the field's area in the working CRS with its geodesic area.
+
+    Parameters
+    ----------
+    boundary : shapely Polygon or MultiPolygon
+        The field in ``working_crs`` (m).
+    working_crs : str
+        The run's CRS, for the message.
+    geodesic_m2 : float
+        The field's area on the WGS 84 ellipsoid (m2), from :func:`geodesic_area_m2`.
+    name : str
+        The boundary file's name, for the message.
+    tolerance : float
+        Largest accepted relative difference (fraction).
+
+    Returns
+    -------
+    dict
+        ``working_crs_ha``, ``geodesic_ha`` (ha) and ``difference`` (relative, signed:
+        positive when the working CRS shows the field larger).
+
+    Raises
+    ------
+    pmap.errors.InputError
+        When the two areas differ by more than ``tolerance``.
+    """
+    planar = float(boundary.area)
+    if not geodesic_m2 > 0:
+        raise InputError(f"{name}: the boundary's geodesic area is {geodesic_m2:g} m2: check "
+                         "the polygon and its CRS")
+    difference = planar / geodesic_m2 - 1.0
+    areas = {"working_crs_ha": planar / 10_000, "geodesic_ha": geodesic_m2 / 10_000,
+             "difference": difference}
+    if not abs(difference) <= tolerance:
+        shown = working_crs if len(working_crs) <= 60 else working_crs[:57] + "..."
+        raise InputError(
+            f"{name}: the field's area is {planar / 10_000:,.2f} ha in the working CRS {shown} "
+            f"but {geodesic_m2 / 10_000:,.2f} ha on the WGS 84 ellipsoid ({difference:+.1%}, "
+            f"more than {tolerance:.0%}): that CRS distorts areas over the field; leave "
+            "grid.crs unset (the field's UTM zone is used) or name a local projection in metres"
+        )
+    return areas
+
+
 def field_mask(grid: GridSpec, boundary: BaseGeometry) -> np.ndarray:
     """Cells whose centre lies inside ``boundary`` (same CRS as ``grid``): bool, shape grid.shape."""
     from rasterio.features import geometry_mask
@@ -165,15 +269,49 @@ def field_mask(grid: GridSpec, boundary: BaseGeometry) -> np.ndarray:
                          all_touched=False, invert=True)
 
 
-def grid_for_boundary(boundary: BaseGeometry, crs: str, cell_size: float) -> GridSpec:
+def grid_for_boundary(boundary: BaseGeometry, crs: str, cell_size: float, *,
+                      max_cells: int | None = None, n_samples: int = 0,
+                      chunk_size: int = 20_000) -> GridSpec:
     """A grid covering ``boundary`` with cells of ``cell_size`` (m) and its field mask.
+
+    Parameters
+    ----------
+    boundary : shapely Polygon or MultiPolygon
+        The field in ``crs`` (m).
+    crs : str
+        Working CRS, projected in metres.
+    cell_size : float
+        Cell edge length (m).
+    max_cells : int, optional
+        Largest grid (width x height cells) allowed (``grid.max_cells``); checked with
+        :func:`pmap.grid.estimate_grid` before anything is allocated.
+    n_samples, chunk_size : int
+        Samples and kriging block size, for the memory estimate in the message.
 
     Raises
     ------
+    pmap.errors.ConfigError
+        When the grid would have more than ``max_cells`` cells; the message gives the
+        estimate (cells and GiB) and the smallest cell size that fits.
     pmap.errors.InputError
         When no cell centre falls inside the boundary (field smaller than a cell).
     """
-    grid = GridSpec.from_bounds(normalise_crs(crs), tuple(boundary.bounds), cell_size)
+    bounds = tuple(boundary.bounds)
+    if max_cells is not None:
+        width, height, n_cells = estimate_grid(bounds, cell_size)
+        if n_cells > max_cells:
+            gib = estimate_memory_bytes(n_cells, n_samples, chunk_size) / 2**30
+            xmin, ymin, xmax, ymax = bounds
+            fits = _smallest_cell_size(bounds, max_cells, cell_size)
+            raise ConfigError(
+                f"grid.cell_size_m = {cell_size:g} m over the field's {xmax - xmin:,.0f} x "
+                f"{ymax - ymin:,.0f} m extent gives {width:,} x {height:,} = {n_cells:,} cells "
+                f"(about {gib:,.1f} GiB of memory by pmap's estimate), more than "
+                f"grid.max_cells = {max_cells:,}: choose a cell size of at least {fits:g} m "
+                "(--cell-size or grid.cell_size_m), or raise grid.max_cells if the machine "
+                "has the memory"
+            )
+    grid = GridSpec.from_bounds(normalise_crs(crs), bounds, cell_size)
     mask = field_mask(grid, boundary)
     if not mask.any():
         raise InputError(
@@ -181,6 +319,16 @@ def grid_for_boundary(boundary: BaseGeometry, crs: str, cell_size: float) -> Gri
             f"{cell_size:g} m: choose a smaller grid.cell_size_m"
         )
     return grid.with_mask(mask)
+
+
+def _smallest_cell_size(bounds: tuple[float, ...], max_cells: int, start: float) -> float:
+    """The smallest cell size, rounded up to 0.1 m, whose grid has at most ``max_cells`` cells."""
+    xmin, ymin, xmax, ymax = bounds
+    size = max(start, math.sqrt(max((xmax - xmin) * (ymax - ymin), 0.0) / max_cells))
+    size = math.ceil(size * 10) / 10
+    while estimate_grid(bounds, size)[2] > max_cells:
+        size = round(size + 0.1, 1)
+    return size
 
 
 def samples_inside(table: SampleTable, boundary: BaseGeometry, buffer_m: float = 0.0) -> np.ndarray:
