@@ -1,4 +1,4 @@
-"""Geostatistics: empirical variograms, model fitting, ordinary kriging, cross-validation.
+"""Geostatistics: variograms, model fitting, ordinary kriging, cross-validation, checks.
 
 Pure numerics on numpy arrays (coordinates in metres of a projected CRS).  See
 ``docs/geostatistics.md`` for the formulas and conventions.
@@ -7,23 +7,39 @@ Pure numerics on numpy arrays (coordinates in metres of a projected CRS).  See
 from __future__ import annotations
 
 from pmap.geostats.crossval import CrossValidation, leave_one_out, loo_kriging
+from pmap.geostats.diagnostics import (
+    TrendTest,
+    close_pairs,
+    first_bin_weight_share,
+    is_pure_nugget,
+    linear_trend,
+    neighbour_correlation,
+    neighbour_spacing,
+    range_at_bound,
+)
 from pmap.geostats.interpolate import (
+    LOGARITHMIC,
     Interpolation,
     KrigingSettings,
     choose_log,
     interpolate,
+    nugget_floor,
     sample_skewness,
 )
 from pmap.geostats.kriging import (
     KrigingResult,
     SingularSystemError,
     check_duplicates,
+    clip_to_limits,
     kriging_matrix,
     lognormal_back_transform,
     lognormal_ordinary_kriging,
     ordinary_kriging,
 )
+from pmap.geostats.outliers import Outlier, flag_outliers, modified_z
 from pmap.geostats.variogram import (
+    CONSTANT,
+    MAX_RANGE_FACTOR,
     MODELS,
     EmpiricalVariogram,
     VariogramModel,
@@ -37,6 +53,7 @@ from pmap.geostats.variogram import (
 
 __all__ = [
     "MODELS",
+    "CONSTANT",
     "EmpiricalVariogram",
     "VariogramModel",
     "empirical_variogram",
@@ -52,6 +69,7 @@ __all__ = [
     "lognormal_back_transform",
     "kriging_matrix",
     "check_duplicates",
+    "clip_to_limits",
     "CrossValidation",
     "leave_one_out",
     "loo_kriging",
@@ -60,4 +78,18 @@ __all__ = [
     "interpolate",
     "choose_log",
     "sample_skewness",
+    "nugget_floor",
+    "LOGARITHMIC",
+    "Outlier",
+    "modified_z",
+    "flag_outliers",
+    "TrendTest",
+    "linear_trend",
+    "close_pairs",
+    "first_bin_weight_share",
+    "is_pure_nugget",
+    "range_at_bound",
+    "neighbour_spacing",
+    "neighbour_correlation",
+    "MAX_RANGE_FACTOR",
 ]

@@ -24,6 +24,7 @@ from pmap.geostats.kriging import (
     _factorise,
     _unit_sill,
     check_duplicates,
+    clip_to_limits,
     lognormal_back_transform,
 )
 from pmap.geostats.variogram import VariogramModel, _check_points
@@ -50,6 +51,10 @@ class CrossValidation:
         Predicted - observed per sample.
     variances : numpy.ndarray, shape (n,)
         Kriging variance of each prediction, squared value units.
+    standardized : numpy.ndarray, shape (n,)
+        ``(predicted - observed) / kriging standard deviation`` in the units actually
+        kriged (of the logarithms for lognormal kriging), dimensionless; ~N(0, 1) when the
+        variogram describes the data.  NaN where the variance is 0.
     """
 
     mean_error: float
@@ -58,6 +63,7 @@ class CrossValidation:
     n: int
     errors: np.ndarray
     variances: np.ndarray
+    standardized: np.ndarray
 
     def as_dict(self) -> dict[str, Any]:
         """The three figures and ``n`` as plain numbers (JSON-able)."""
@@ -96,7 +102,12 @@ def loo_kriging(
     return estimate, variance, lagrange
 
 
-def _figures(errors: np.ndarray, variances: np.ndarray) -> CrossValidation:
+def _standardize(errors: np.ndarray, variances: np.ndarray) -> np.ndarray:
+    with np.errstate(divide="ignore", invalid="ignore"):
+        return np.where(variances > 0, errors / np.sqrt(variances), np.nan)
+
+
+def _figures(errors: np.ndarray, variances: np.ndarray, standardized: np.ndarray) -> CrossValidation:
     with np.errstate(divide="ignore", invalid="ignore"):
         ratio = errors**2 / variances
     return CrossValidation(
@@ -106,6 +117,7 @@ def _figures(errors: np.ndarray, variances: np.ndarray) -> CrossValidation:
         n=int(errors.size),
         errors=errors,
         variances=variances,
+        standardized=standardized,
     )
 
 
@@ -115,6 +127,7 @@ def leave_one_out(
     model: VariogramModel,
     *,
     log: bool = False,
+    limits: tuple[float, float] | None = None,
 ) -> CrossValidation:
     """Leave-one-out cross-validation with a fixed variogram.
 
@@ -129,18 +142,28 @@ def leave_one_out(
     log : bool
         Krige ``log(values)`` and back-transform each prediction and variance with the
         lognormal formulas of :func:`~pmap.geostats.kriging.lognormal_back_transform`.
+    limits : (float, float), optional
+        Physical range of the property, in its units: predictions are clipped to it
+        before the errors are taken, as the map's estimates are (see
+        :func:`~pmap.geostats.kriging.clip_to_limits`).
 
     Returns
     -------
     CrossValidation
-        Errors (predicted - observed) and variances in the original units.
+        Errors (predicted - observed) and variances in the original units; standardized
+        errors in the units kriged (log units when ``log``), before any clipping.
     """
     values = np.asarray(values, dtype=float)
     if log:
         if np.any(~(values > 0)):
             raise ValueError("log cross-validation needs all values > 0 (and finite)")
-        y_est, y_var, mu = loo_kriging(coords, np.log(values), model)
+        y = np.log(values)
+        y_est, y_var, mu = loo_kriging(coords, y, model)
         estimate, variance = lognormal_back_transform(y_est, y_var, mu)
+        standardized = _standardize(y_est - y, y_var)
     else:
         estimate, variance, _ = loo_kriging(coords, values, model)
-    return _figures(estimate - values, variance)
+        standardized = _standardize(estimate - values, variance)
+    if limits is not None:
+        estimate = clip_to_limits(estimate, limits)[0]
+    return _figures(estimate - values, variance, standardized)

@@ -2,29 +2,50 @@
 
 :func:`interpolate` decides on a log transform, builds the empirical variogram, fits the
 best bounded model, kriges the targets (lognormal ordinary kriging when logged) and
-cross-validates, returning everything needed for maps and the summary.
+cross-validates, returning everything needed for maps and the summary.  It then checks
+the result and warns, naming the samples concerned, when the map is likely flat or
+misleading: outliers (:mod:`pmap.geostats.outliers`), a pure-nugget fit, an MSDR outside
+its band, a trend without a sill, near-coincident samples
+(:mod:`pmap.geostats.diagnostics`).  A property whose samples are all equal is mapped as
+that constant.
 """
 
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
 
-from pmap._checks import check_number, check_whole
+from pmap._checks import check_number, check_whole, require
 from pmap.errors import ConfigError, InputError, InsufficientDataError, ModelFitError, PmapWarning
 from pmap.geostats.crossval import CrossValidation, leave_one_out
+from pmap.geostats.diagnostics import (
+    CLOSE_PAIR_FRACTION,
+    PURE_NUGGET_FRACTION,
+    TREND_ALPHA,
+    TREND_R2,
+    close_pairs,
+    first_bin_weight_share,
+    is_pure_nugget,
+    linear_trend,
+    neighbour_correlation,
+    neighbour_spacing,
+    range_at_bound,
+)
 from pmap.geostats.kriging import (
     KrigingResult,
     SingularSystemError,
     check_duplicates,
+    clip_to_limits,
     lognormal_ordinary_kriging,
     ordinary_kriging,
 )
+from pmap.geostats.outliers import DEFAULT_THRESHOLD, MAX_OUTLIER_FRACTION, Outlier, modified_z
 from pmap.geostats.variogram import (
-    _MAX_RANGE_FACTOR,
+    CONSTANT,
+    MAX_RANGE_FACTOR,
     MODELS,
     EmpiricalVariogram,
     VariogramModel,
@@ -34,11 +55,13 @@ from pmap.geostats.variogram import (
 )
 
 __all__ = ["KrigingSettings", "Interpolation", "interpolate", "nugget_floor", "sample_skewness",
-           "choose_log"]
+           "choose_log", "LOGARITHMIC"]
 
 _LOG_CHOICES = ("auto", "always", "never")
 # Sample skewness above which "auto" kriges the logarithm.
 _SKEW_LIMIT = 1.0
+#: Properties that are logarithms already (pH = -log10 of the H+ activity): never log-kriged.
+LOGARITHMIC: tuple[str, ...] = ("ph",)
 
 
 @dataclass(frozen=True)
@@ -68,7 +91,8 @@ class KrigingSettings:
         metadata={
             "unit": "",
             "doc": "krige the logarithm: 'auto' (when all values > 0 and sample skewness > 1), "
-            "'always' or 'never'",
+            "'always' or 'never'; pH, a logarithm already, is never logged ('always' is "
+            "ignored for it with a warning)",
             "source": "common practice, no source",
         },
     )
@@ -95,7 +119,8 @@ class KrigingSettings:
         metadata={
             "unit": "fraction",
             "doc": "relative measurement error of the other properties (P, CaCO3, clay, ...); "
-            "the nugget is at least (lab_error_cv x sample mean)^2, or log(1 + cv^2) in log space",
+            "the nugget is at least (lab_error_cv x sample mean)^2, or log(1 + cv^2) when the "
+            "logarithm is kriged (every bound is in the units kriged)",
             "source": "from memory, unverified",
         },
     )
@@ -103,6 +128,34 @@ class KrigingSettings:
         default=20000,
         metadata={"unit": "cells", "doc": "grid cells solved per block; bounds memory",
                   "source": "common practice, no source"},
+    )
+    outlier_z: float = field(
+        default=DEFAULT_THRESHOLD,
+        metadata={
+            "unit": "",
+            "doc": "a sample is named as a likely outlier when the modified z-score "
+            "0.6745 (x - median) / MAD of its value (of its logarithm when log-kriged) or of "
+            "its leave-one-out standardized error exceeds this in absolute value",
+            "source": "Iglewicz & Hoaglin 1993, How to Detect and Handle Outliers",
+        },
+    )
+    drop_outliers: bool = field(
+        default=False,
+        metadata={
+            "unit": "",
+            "doc": "leave the named outliers out and refit (one round); false keeps them and "
+            "only names them",
+            "source": "common practice, no source",
+        },
+    )
+    msdr_band: tuple[float, ...] = field(
+        default=(0.5, 2.0),
+        metadata={
+            "unit": "",
+            "doc": "[low, high]: warn when the leave-one-out mean squared deviation ratio "
+            "(ideal 1) falls outside; the kriging variance then misstates the real errors",
+            "source": "common practice, no source",
+        },
     )
 
     def __post_init__(self) -> None:
@@ -127,20 +180,56 @@ class KrigingSettings:
         for key in ("lab_error_sd_ph", "lab_error_cv"):
             check_number(f"kriging.{key}", getattr(self, key), ge=0, lt=1)
         check_whole("kriging.chunk_size", self.chunk_size, ge=1)
+        check_number("kriging.outlier_z", self.outlier_z, gt=0, finite=True)
+        require(isinstance(self.drop_outliers, bool), "kriging.drop_outliers", "be true or false",
+                repr(self.drop_outliers))
+        if isinstance(self.msdr_band, list):
+            object.__setattr__(self, "msdr_band", tuple(self.msdr_band))
+        band = self.msdr_band
+        require(
+            isinstance(band, tuple) and len(band) == 2
+            and all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in band)
+            and 0 < band[0] < 1 < band[1] < np.inf,
+            "kriging.msdr_band", "be [low, high] with 0 < low < 1 < high", list(band)
+            if isinstance(band, tuple) else repr(band),
+        )
 
 
 def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSettings) -> float:
-    """Least nugget (units of the kriged variable squared) allowed by the lab's precision.
+    """Least nugget allowed by the lab's precision, in squared units of the kriged variable.
 
-    pH uses ``lab_error_sd_ph``; other properties a relative error
-    ``lab_error_cv`` of the sample mean, or ``log(1 + cv^2)`` when the logarithm is kriged.
+    pH uses the absolute error ``lab_error_sd_ph`` (pH units), the other properties a
+    relative error ``lab_error_cv`` of the sample mean.  On the property's own scale the
+    floor is the error variance, ``sd^2`` or ``(cv x mean)^2``; when the logarithm is kriged
+    it is the variance of the log of a value with that relative error, ``log(1 + cv^2)``
+    (``cv = sd / mean`` for pH), the lognormal relation between a relative error and a
+    log-scale variance.  A floor in the wrong units can exceed the whole variance of the
+    kriged variable and force a pure-nugget fit.
+
+    Parameters
+    ----------
+    name : str
+        Property name; ``"ph"`` selects ``lab_error_sd_ph``.
+    values : numpy.ndarray
+        Sample values in the property's units (not logged).
+    log : bool
+        Whether ``log(values)`` is kriged.
+    settings : KrigingSettings
+        The ``[kriging]`` section.
+
+    Returns
+    -------
+    float
+        Squared property units, or squared log units when ``log``.
     """
+    mean = float(np.mean(values))
     if name == "ph":
-        return float(settings.lab_error_sd_ph) ** 2
+        sd = float(settings.lab_error_sd_ph)
+        return float(np.log1p((sd / mean) ** 2)) if log else sd**2
     cv = float(settings.lab_error_cv)
     if log:
         return float(np.log1p(cv**2))
-    return float((cv * np.mean(values)) ** 2)
+    return float((cv * mean) ** 2)
 
 
 @dataclass(frozen=True)
@@ -156,13 +245,30 @@ class Interpolation:
     empirical : EmpiricalVariogram
         Empirical variogram of the kriged variable (of ``log(values)`` when ``log``).
     model : VariogramModel
-        The variogram model used.
+        The variogram model used; kind ``"constant"`` (zero variogram) for a property
+        whose samples are all equal.
     candidates : dict
-        Weighted SSE of every model family fitted.
+        Weighted SSE of every model family fitted (empty for a constant).
     result : KrigingResult
-        Estimates and variances at the targets, in the property's units.
+        Estimates and variances at the targets, in the property's units.  The estimates
+        are clipped to the physical ``limits`` given to :func:`interpolate`: they are the
+        values the maps and the summary show.
     cv : CrossValidation
         Leave-one-out figures in the property's units.
+    kind : str
+        ``"kriged"``, or ``"constant"`` when every sample has the same value and the map
+        is that value (variance 0, cross-validation errors 0, MSDR undefined).
+    outliers : tuple of Outlier
+        Samples named as likely outliers (see :mod:`pmap.geostats.outliers`).
+    notes : tuple of str
+        The warnings issued for this property, in order.
+    diagnostics : dict
+        Figures behind the warnings: ``nugget_floor`` (squared kriged units),
+        ``pure_nugget``, ``spacing_m`` (median nearest-neighbour distance, m),
+        ``neighbour_correlation`` (model correlation at that distance), ``no_structure``
+        (pure nugget or that correlation <= 0.05: the map is the field mean), ``msdr_in_band``, ``trend_r2``, ``trend_p``, ``close_pairs``,
+        ``clipped_cells``, ``n_dropped``, ``n_large_errors`` (samples flagged when too many
+        were flagged to be outliers).
     """
 
     name: str
@@ -172,16 +278,25 @@ class Interpolation:
     candidates: dict[str, float]
     result: KrigingResult
     cv: CrossValidation
+    kind: str = "kriged"
+    outliers: tuple[Outlier, ...] = ()
+    notes: tuple[str, ...] = ()
+    diagnostics: dict[str, Any] = field(default_factory=dict)
 
     def as_dict(self) -> dict[str, Any]:
         """Summary without the target arrays (JSON-able)."""
         return {
             "name": self.name,
+            "kind": self.kind,
             "log": bool(self.log),
             "model": self.model.as_dict(),
             "candidates": {k: float(v) for k, v in self.candidates.items()},
             "variogram": self.empirical.as_dict(),
             "cv": self.cv.as_dict(),
+            "outliers": [o.as_dict() for o in self.outliers],
+            "notes": list(self.notes),
+            "diagnostics": {k: (v if isinstance(v, (bool, int, str)) else float(v))
+                            for k, v in self.diagnostics.items()},
         }
 
 
@@ -195,13 +310,18 @@ def sample_skewness(values: np.ndarray) -> float:
     return float(np.mean(dev**3) / m2**1.5)
 
 
-def choose_log(values: np.ndarray, rule: str = "auto") -> bool:
+def choose_log(values: np.ndarray, rule: str = "auto", *, name: str | None = None) -> bool:
     """Whether to krige ``log(values)`` under ``rule`` ("auto", "always", "never").
 
-    "auto" logs when every value is > 0 and the sample skewness exceeds 1.
+    "auto" logs when every value is > 0 and the sample skewness exceeds 1.  A property
+    that is itself a logarithm (pH, ``name == "ph"``) is never logged, whatever the
+    rule: its skewness says nothing about lognormality, and a log of pH squeezes its
+    variance to a few thousandths.  :func:`interpolate` warns when "always" is ignored.
     """
     values = np.asarray(values, dtype=float)
-    if rule == "never":
+    if rule not in _LOG_CHOICES:
+        raise ConfigError(f"kriging.log_transform must be one of {list(_LOG_CHOICES)}, got {rule!r}")
+    if rule == "never" or name in LOGARITHMIC:
         return False
     if rule == "always":
         if np.any(~(values > 0)):
@@ -210,9 +330,167 @@ def choose_log(values: np.ndarray, rule: str = "auto") -> bool:
                 f"found {int(np.sum(~(values > 0)))} value(s) <= 0 (use 'auto' or 'never')"
             )
         return True
-    if rule == "auto":
-        return bool(np.all(values > 0) and sample_skewness(values) > _SKEW_LIMIT)
-    raise ConfigError(f"kriging.log_transform must be one of {list(_LOG_CHOICES)}, got {rule!r}")
+    return bool(np.all(values > 0) and sample_skewness(values) > _SKEW_LIMIT)
+
+
+@dataclass(frozen=True)
+class _Fit:
+    """One pass of log choice, variogram fit, kriging and cross-validation."""
+
+    log: bool
+    kriged: np.ndarray
+    empirical: EmpiricalVariogram
+    model: VariogramModel
+    candidates: dict[str, float]
+    result: KrigingResult
+    cv: CrossValidation
+    floor: float
+    notes: tuple[str, ...]
+
+
+def _fit(
+    name: str, coords: np.ndarray, values: np.ndarray, targets: np.ndarray,
+    settings: KrigingSettings, limits: tuple[float, float] | None,
+) -> _Fit:
+    log = choose_log(values, settings.log_transform, name=name)
+    kriged = np.log(values) if log else values
+    cutoff = default_cutoff(coords, settings.cutoff_fraction)
+    emp = empirical_variogram(coords, kriged, cutoff=cutoff, n_bins=settings.n_bins)
+    floor = nugget_floor(name, values, log, settings)
+    try:
+        models, candidates = fit_variograms(emp, settings.models, min_nugget=floor)
+    except ModelFitError as exc:
+        raise ModelFitError(f"{name}: {exc}") from exc
+    krige = lognormal_ordinary_kriging if log else ordinary_kriging
+    notes: list[str] = []
+    for model in models:
+        try:
+            result = krige(coords, values, targets, model, chunk_size=settings.chunk_size)
+            cv = leave_one_out(coords, values, model, log=log, limits=limits)
+        except SingularSystemError as exc:
+            notes.append(f"{name}: skipping the {model.kind} variogram: {exc}")
+            continue
+        return _Fit(log, kriged, emp, model, candidates, result, cv, floor, tuple(notes))
+    raise ModelFitError(f"{name}: every fitted variogram model gives a singular kriging system")
+
+
+def _find_outliers(
+    fit: _Fit, values: np.ndarray, ids: np.ndarray, rows: np.ndarray | None, threshold: float,
+) -> tuple[list[Outlier], np.ndarray]:
+    """Samples whose leave-one-out error is improbable and that stand out robustly.
+
+    A sample is named when its standardized leave-one-out error exceeds ``threshold``
+    in absolute value (improbable under the fitted model) and its modified z-score
+    exceeds ``threshold`` either on its value in the kriged units (kind ``"value"``) or
+    among the standardized errors (kind ``"cross-validation"``).  The first condition
+    keeps the extreme but spatially consistent values of a real hot spot or of a
+    calcareous patch in a field mostly free of CaCO3 off the list.  Largest |z| first.
+    """
+    found: list[Outlier] = []
+    flagged = np.zeros(values.size, dtype=bool)
+    standardized = fit.cv.standardized
+    if not np.all(np.isfinite(standardized)):
+        return found, flagged
+    with np.errstate(invalid="ignore"):
+        improbable = np.abs(standardized) > threshold
+        for kind, z in (("value", modified_z(fit.kriged)),
+                        ("cross-validation", modified_z(standardized))):
+            hit = improbable & (np.abs(z) > threshold)
+            flagged |= hit
+            for i in np.flatnonzero(hit):
+                row = None if rows is None else int(rows[i])
+                found.append(Outlier(str(ids[i]), row, float(values[i]), float(z[i]), kind))
+    found.sort(key=lambda o: -abs(o.z))
+    return found, flagged
+
+
+def _too_many(flagged: np.ndarray) -> bool:
+    """More samples flagged than outliers can be: more than one and > MAX_OUTLIER_FRACTION."""
+    k = int(flagged.sum())
+    return k > 1 and k > MAX_OUTLIER_FRACTION * flagged.size
+
+
+def _mismatch_note(name: str, fit: _Fit, ids: np.ndarray, rows: np.ndarray | None,
+                   flagged: np.ndarray, threshold: float) -> str:
+    order = np.argsort(-np.abs(fit.cv.standardized))
+    worst = [i for i in order if flagged[i]][:10]
+    shown = ", ".join(
+        f"{ids[i]}" + (f" (row {int(rows[i])})" if rows is not None else "")
+        + f" {fit.cv.standardized[i]:+.1f}"
+        for i in worst
+    )
+    k = int(flagged.sum())
+    return (
+        f"{name}: {k} of {flagged.size} samples ({100 * k / flagged.size:.0f} %, more than the "
+        f"{100 * MAX_OUTLIER_FRACTION:g} % outliers can be) have leave-one-out errors beyond "
+        f"{threshold:g} kriging standard deviations and stand out robustly: {shown}"
+        + (f" and {k - 10} more" if k > 10 else "")
+        + ". These are not single slips: the samples fall into groups or change abruptly "
+        "(e.g. a sharp soil boundary), which one stationary variogram does not describe; the "
+        "map smooths across such boundaries and its variance layer is unreliable there. "
+        "None were dropped."
+    )
+
+
+def _outlier_note(name: str, found: list[Outlier], log: bool, threshold: float,
+                  dropped: bool, kept_because: str = "") -> str:
+    by_sample: dict[str, list[Outlier]] = {}
+    for o in found:
+        by_sample.setdefault(o.id, []).append(o)
+    parts = []
+    for sid, entries in list(by_sample.items())[:10]:
+        first = entries[0]
+        where = f" (row {first.row})" if first.row is not None else ""
+        scores = ", ".join(
+            f"z = {o.z:.1f} on its " + (("log value" if log else "value") if o.kind == "value"
+                                        else "leave-one-out error")
+            for o in entries
+        )
+        parts.append(f"{sid}{where} = {first.value:.6g}, {scores}")
+    shown = "; ".join(parts) + (f"; and {len(by_sample) - 10} more" if len(by_sample) > 10 else "")
+    head = (
+        f"{name}: {len(by_sample)} sample(s) stand out as potential outliers (leave-one-out error "
+        f"beyond {threshold:g} kriging standard deviations, and a modified z-score |z| > "
+        f"{threshold:g} (Iglewicz & Hoaglin 1993) on the {'log ' if log else ''}value or among "
+        f"the standardized errors): {shown}. "
+    )
+    if dropped:
+        return head + ("They were left out and the variogram refitted without them "
+                       "(kriging.drop_outliers = true): the map does not use them.")
+    if kept_because:
+        return head + f"They were kept: {kept_because}; check them for typing or unit slips."
+    return head + ("They were kept: check them for typing or unit slips and correct the file, "
+                   "or set kriging.drop_outliers = true to refit without them.")
+
+
+def _constant(
+    name: str, coords: np.ndarray, values: np.ndarray, targets: np.ndarray,
+    settings: KrigingSettings, limits: tuple[float, float] | None,
+) -> Interpolation:
+    """The map of a property whose samples all hold the same value: that value."""
+    level = float(values[0])
+    cutoff = default_cutoff(coords, settings.cutoff_fraction)
+    emp = empirical_variogram(coords, values, cutoff=cutoff, n_bins=settings.n_bins)
+    m, n = targets.shape[0], values.size
+    estimate = np.full(m, level)
+    clipped = 0
+    if limits is not None:
+        estimate, clipped = clip_to_limits(estimate, limits)
+    result = KrigingResult(estimate, np.zeros(m), np.zeros(m))
+    zeros = np.zeros(n)
+    cv = CrossValidation(0.0, 0.0, float("nan"), n, zeros, zeros.copy(), np.full(n, np.nan))
+    note = (
+        f"{name}: all {n} samples hold the same value, {level:g}: the property is mapped as "
+        "that constant (kriging variance 0, leave-one-out errors 0, MSDR undefined); no "
+        "variogram was fitted"
+    )
+    warnings.warn(note, PmapWarning, stacklevel=3)
+    diagnostics = {"nugget_floor": 0.0, "pure_nugget": False, "spacing_m": neighbour_spacing(coords),
+                   "neighbour_correlation": 1.0, "no_structure": False, "msdr_in_band": True,
+                   "trend_r2": 0.0, "trend_p": 1.0, "close_pairs": 0, "clipped_cells": clipped,
+                   "n_dropped": 0, "n_large_errors": 0}
+    return Interpolation(name, False, emp, VariogramModel(CONSTANT, 0.0, 0.0, cutoff), {}, result,
+                         cv, kind="constant", notes=(note,), diagnostics=diagnostics)
 
 
 def interpolate(
@@ -221,13 +499,17 @@ def interpolate(
     values: np.ndarray,
     targets: np.ndarray,
     settings: KrigingSettings = KrigingSettings(),  # noqa: B008 - frozen, immutable default
+    *,
+    ids: np.ndarray | None = None,
+    rows: np.ndarray | None = None,
+    limits: tuple[float, float] | None = None,
 ) -> Interpolation:
     """Krige one property at ``targets`` with a fitted variogram and cross-validation.
 
     Parameters
     ----------
     name : str
-        Property name, used in messages.
+        Property name, used in messages; ``"ph"`` is never log-kriged.
     coords : numpy.ndarray, shape (n, 2)
         Sample coordinates, m (projected CRS).
     values : numpy.ndarray, shape (n,)
@@ -237,6 +519,13 @@ def interpolate(
         Prediction points, m.
     settings : KrigingSettings
         The ``[kriging]`` section.
+    ids : numpy.ndarray of str, shape (n,), optional
+        Sample identifiers, for messages; default the position in ``values``.
+    rows : numpy.ndarray of int, shape (n,), optional
+        Row of each sample in its file, for messages.
+    limits : (float, float), optional
+        Physical range of the property (its units): estimates, and leave-one-out
+        predictions, are clipped to it, with a warning when that bites.
 
     Returns
     -------
@@ -250,52 +539,184 @@ def interpolate(
         Duplicate coordinates, no fittable variogram, or every fitted model gives a
         singular kriging system.
 
+    Warns
+    -----
+    PmapWarning
+        For each finding that makes the map flat or misleading, naming the samples
+        concerned: likely outliers; a pure-nugget fit (the map is the field mean); an MSDR
+        outside ``settings.msdr_band``; a linear trend with no sill within the cutoff;
+        near-coincident samples that steer the fit; estimates clipped to ``limits``; a
+        constant property; a model skipped as singular; ``log_transform = "always"``
+        ignored for pH.  Each text is also kept in :attr:`Interpolation.notes`.
+
     Notes
     -----
     The models are tried in order of weighted SSE; a model whose kriging system is
-    numerically singular is skipped with a :class:`~pmap.errors.PmapWarning`.
+    numerically singular is skipped.  Every variogram bound is in the units actually
+    kriged (see :func:`nugget_floor`).  The thresholds of the checks are in
+    :mod:`pmap.geostats.diagnostics` and ``docs/geostatistics.md``.
     """
     coords = np.asarray(coords, dtype=float)
     values = np.asarray(values, dtype=float)
     if coords.ndim != 2 or coords.shape[1] != 2 or values.shape != (coords.shape[0],):
         raise ValueError(f"{name}: coords must be (n, 2) and values (n,), got {coords.shape}, {values.shape}")
+    ids = np.arange(values.size).astype(str) if ids is None else np.asarray(ids).astype(str)
+    if ids.shape != values.shape or (rows is not None and np.shape(rows) != values.shape):
+        raise ValueError(f"{name}: ids and rows must have the shape of values, {values.shape}")
     has_value = np.isfinite(values)
-    coords, values = coords[has_value], values[has_value]
+    coords, values, ids = coords[has_value], values[has_value], ids[has_value]
+    rows = None if rows is None else np.asarray(rows)[has_value]
     n = values.size
     if n < settings.min_samples:
         raise InsufficientDataError(
             f"{name}: {n} samples with values; kriging needs at least {settings.min_samples} "
             "(set kriging.min_samples to change)"
         )
+    if np.ptp(values) == 0:
+        return _constant(name, coords, values, targets, settings, limits)
     try:
         check_duplicates(coords)
     except ModelFitError as exc:
         raise ModelFitError(f"{name}: {exc}") from exc
-    log = choose_log(values, settings.log_transform)
-    kriged = np.log(values) if log else values
-    cutoff = default_cutoff(coords, settings.cutoff_fraction)
-    emp = empirical_variogram(coords, kriged, cutoff=cutoff, n_bins=settings.n_bins)
-    try:
-        floor = nugget_floor(name, values, log, settings)
-        models, candidates = fit_variograms(emp, settings.models, min_nugget=floor)
-    except ModelFitError as exc:
-        raise ModelFitError(f"{name}: {exc}") from exc
-    krige = lognormal_ordinary_kriging if log else ordinary_kriging
-    for model in models:
-        try:
-            result = krige(coords, values, targets, model, chunk_size=settings.chunk_size)
-            cv = leave_one_out(coords, values, model, log=log)
-        except SingularSystemError as exc:
-            warnings.warn(f"{name}: skipping the {model.kind} variogram: {exc}", PmapWarning, stacklevel=2)
-            continue
-        if model.range >= 0.999 * _MAX_RANGE_FACTOR * emp.cutoff:
-            warnings.warn(
-                f"{name}: the fitted {model.kind} range reached its upper bound "
-                f"({model.range:.0f} m, {_MAX_RANGE_FACTOR:g} x the cutoff): the variogram keeps "
-                "rising within the cutoff, as a trend across the field does; the map is still "
-                "an interpolation of the samples, but read its variance with care",
-                PmapWarning,
-                stacklevel=2,
+
+    notes: list[str] = []
+    if name in LOGARITHMIC and settings.log_transform == "always":
+        notes.append(f"{name}: kriging.log_transform = 'always' is ignored for {name}: it is "
+                     "already a logarithm and is kriged on its own scale")
+    fit = _fit(name, coords, values, targets, settings, limits)
+    found, flagged = _find_outliers(fit, values, ids, rows, settings.outlier_z)
+    n_dropped = 0
+    n_mismatch = 0
+    if _too_many(flagged):
+        notes.append(_mismatch_note(name, fit, ids, rows, flagged, settings.outlier_z))
+        n_mismatch = int(flagged.sum())
+        found = []
+    elif found and settings.drop_outliers:
+        keep = ~flagged
+        if keep.sum() < settings.min_samples or np.ptp(values[keep]) == 0:
+            notes.append(_outlier_note(
+                name, found, fit.log, settings.outlier_z, dropped=False,
+                kept_because=f"without them {int(keep.sum())} samples would remain, fewer than "
+                "kriging.min_samples or all equal"))
+        else:
+            dropped = [Outlier(o.id, o.row, o.value, o.z, o.kind, dropped=True) for o in found]
+            notes.append(_outlier_note(name, dropped, fit.log, settings.outlier_z, dropped=True))
+            coords, values, ids = coords[keep], values[keep], ids[keep]
+            rows = None if rows is None else rows[keep]
+            n_dropped = int(flagged.sum())
+            fit = _fit(name, coords, values, targets, settings, limits)
+            again, again_flagged = _find_outliers(fit, values, ids, rows, settings.outlier_z)
+            if _too_many(again_flagged):
+                notes.append(_mismatch_note(name, fit, ids, rows, again_flagged,
+                                            settings.outlier_z))
+                n_mismatch = int(again_flagged.sum())
+                again = []
+            elif again:
+                notes.append(_outlier_note(
+                    name, again, fit.log, settings.outlier_z, dropped=False,
+                    kept_because="they stand out only after the refit, and one round is dropped"))
+            found = dropped + again
+    elif found:
+        notes.append(_outlier_note(name, found, fit.log, settings.outlier_z, dropped=False))
+    notes.extend(fit.notes)
+
+    model, emp, cv = fit.model, fit.empirical, fit.cv
+    kept = [o for o in found if not o.dropped]
+    log_word = "log " if fit.log else ""
+    sq_units = " (squared log units)" if fit.log else ""
+    result = fit.result
+    clipped = 0
+    if limits is not None:
+        clipped_estimate, clipped = clip_to_limits(result.estimate, limits)
+        if clipped:
+            notes.append(
+                f"{name}: {clipped} cell(s) ({100 * clipped / result.estimate.size:.0f} % of the "
+                f"targets) kriged outside {limits[0]:g}-{limits[1]:g} were set to the limit "
+                "(ordinary kriging can overshoot near extreme samples)"
             )
-        return Interpolation(name, log, emp, model, candidates, result, cv)
-    raise ModelFitError(f"{name}: every fitted variogram model gives a singular kriging system")
+        result = replace(result, estimate=clipped_estimate)
+
+    pure = is_pure_nugget(model)
+    spacing = neighbour_spacing(coords)
+    rho = neighbour_correlation(model, spacing)
+    if pure or rho <= PURE_NUGGET_FRACTION:
+        level = float(np.median(result.estimate)) if result.estimate.size else float("nan")
+        if pure:
+            what = (f"is pure nugget (partial sill {model.psill:.3g} is "
+                    f"{100 * model.psill / model.sill:.1f} % of the sill {model.sill:.3g}{sq_units}; "
+                    f"pmap calls a fit pure nugget at {100 * PURE_NUGGET_FRACTION:g} % or less)")
+        else:
+            what = (f"leaves neighbouring samples uncorrelated (correlation {rho:.2f} at the "
+                    f"median sample spacing of {spacing:.0f} m, practical range "
+                    f"{model.range:.0f} m; pmap warns at {PURE_NUGGET_FRACTION:g} or less)")
+        note = (
+            f"{name}: the fitted {model.kind} variogram {what}: the samples show no spatial "
+            f"structure at this spacing, so the map is the field mean, {level:.4g}, everywhere "
+            "but right beside the samples"
+        )
+        variance = float(np.var(fit.kriged))
+        if fit.floor >= 0.5 * variance:
+            note += (f"; the least nugget set by the lab error ({fit.floor:.3g}) is "
+                     f"{100 * fit.floor / variance:.0f} % of the variance of the {log_word}values "
+                     "(see kriging.lab_error_sd_ph and kriging.lab_error_cv)")
+        if kept:
+            note += "; the outliers named above may cause this"
+        notes.append(note)
+
+    lo, hi = settings.msdr_band
+    in_band = not np.isfinite(cv.msdr) or lo <= cv.msdr <= hi
+    if not in_band:
+        if cv.msdr > hi:
+            meaning = (f"the actual errors are about {np.sqrt(cv.msdr):.2g} times larger than the "
+                       "kriging standard deviation says, so the variance layer is too optimistic")
+        else:
+            meaning = (f"the actual errors are about {np.sqrt(cv.msdr):.2g} times the kriging "
+                       "standard deviation, so the variance layer is too pessimistic")
+        notes.append(
+            f"{name}: the leave-one-out mean squared deviation ratio (MSDR) is {cv.msdr:.3g}, "
+            f"outside kriging.msdr_band [{lo:g}, {hi:g}]: {meaning}; the estimates' own error is "
+            f"the cross-validation RMSE, {cv.rmse:.3g}"
+            + ("; the outliers named above may cause this" if kept else "")
+        )
+
+    trend = linear_trend(coords, fit.kriged)
+    if trend.r2 >= TREND_R2 and trend.p_value < TREND_ALPHA and range_at_bound(model, emp):
+        notes.append(
+            f"{name}: a linear trend in x and y explains {100 * trend.r2:.0f} % of the variance "
+            f"of the {log_word}values (F-test p = {trend.p_value:.1g}; pmap warns from "
+            f"{100 * TREND_R2:g} % at p < {TREND_ALPHA:g}) and the variogram finds no sill: the "
+            f"fitted {model.kind} range sits on its upper bound ({model.range:.0f} m, "
+            f"{MAX_RANGE_FACTOR:g} x the cutoff of {emp.cutoff:.0f} m). Ordinary kriging then "
+            "models the trend as correlation over a long range: the map follows the samples, "
+            "but its variance layer is only approximate (pmap does not remove trends)"
+        )
+
+    tolerance = CLOSE_PAIR_FRACTION * emp.cutoff / settings.n_bins
+    pairs = close_pairs(coords, tolerance)
+    if pairs.size:
+        dist = np.hypot(*(coords[pairs[:, 0]] - coords[pairs[:, 1]]).T)
+        shown = ", ".join(
+            f"{ids[i]}/{ids[j]} ({d:.2g} m, {values[i]:.4g} vs {values[j]:.4g})"
+            for (i, j), d in zip(pairs[:10], dist[:10], strict=True)
+        ) + (f" and {len(pairs) - 10} more" if len(pairs) > 10 else "")
+        notes.append(
+            f"{name}: {len(pairs)} pair(s) of samples lie within {tolerance:.2g} m of each other "
+            f"({100 * CLOSE_PAIR_FRACTION:g} % of the lag-bin width): {shown}. With the fit's "
+            f"weights N_h/h^2 the shortest lag bin (mean lag {emp.lag[0]:.2g} m) carries "
+            f"{100 * first_bin_weight_share(emp):.0f} % of the weight, so such pairs set the "
+            f"nugget: {model.nugget:.3g}{sq_units}, {100 * model.nugget / model.sill:.0f} % of "
+            "the sill (the larger that share, the closer the map lies to the field mean). Merge "
+            "re-samples of one place into one sample before kriging, or find out why they differ"
+        )
+
+    for note in notes:
+        warnings.warn(note, PmapWarning, stacklevel=2)
+    diagnostics = {
+        "nugget_floor": fit.floor, "pure_nugget": pure, "spacing_m": spacing,
+        "neighbour_correlation": rho, "no_structure": bool(pure or rho <= PURE_NUGGET_FRACTION),
+        "msdr_in_band": bool(in_band),
+        "trend_r2": trend.r2, "trend_p": trend.p_value, "close_pairs": int(len(pairs)),
+        "clipped_cells": int(clipped), "n_dropped": n_dropped, "n_large_errors": n_mismatch,
+    }
+    return Interpolation(name, fit.log, emp, model, fit.candidates, result, cv, kind="kriged",
+                         outliers=tuple(found), notes=tuple(notes), diagnostics=diagnostics)

@@ -36,6 +36,7 @@ __all__ = [
     "lognormal_back_transform",
     "kriging_matrix",
     "check_duplicates",
+    "clip_to_limits",
 ]
 
 # Reciprocal condition number below which the kriging system counts as singular.
@@ -79,6 +80,36 @@ def check_duplicates(coords: np.ndarray) -> None:
             f"hold {int(dup.sum())} samples); the kriging system is singular. Average the "
             "values at identical coordinates before kriging."
         )
+
+
+def clip_to_limits(
+    estimate: np.ndarray, limits: tuple[float, float]
+) -> tuple[np.ndarray, int]:
+    """Clip kriged values to a property's physical range.
+
+    Ordinary kriging weights may be negative, so an estimate can overshoot the range of
+    the samples near extreme values (e.g. CaCO3 below 0 % beside a calcareous patch).
+
+    Parameters
+    ----------
+    estimate : numpy.ndarray
+        Kriged values, in the property's units.
+    limits : (float, float)
+        Lowest and highest physical value, same units (``-inf``/``inf`` for none).
+
+    Returns
+    -------
+    clipped : numpy.ndarray
+        A new array, ``estimate`` clipped to ``[lo, hi]``; NaN stays NaN.
+    n_clipped : int
+        Number of values that were outside the range.
+    """
+    lo, hi = (float(v) for v in limits)
+    if not lo < hi:
+        raise ValueError(f"limits must satisfy lo < hi, got {limits}")
+    estimate = np.asarray(estimate, dtype=float)
+    outside = int(np.count_nonzero((estimate < lo) | (estimate > hi)))
+    return np.clip(estimate, lo, hi), outside
 
 
 def kriging_matrix(coords: np.ndarray, model: VariogramModel) -> np.ndarray:

@@ -31,15 +31,19 @@ __all__ = [
     "fit_variograms",
     "weighted_sse",
     "default_cutoff",
+    "CONSTANT",
+    "MAX_RANGE_FACTOR",
 ]
 
 #: Variogram model families pmap can fit, all bounded (with a sill).
 MODELS: tuple[str, ...] = ("spherical", "exponential", "gaussian")
+#: Kind of the zero variogram of a property whose samples are all equal; never fitted.
+CONSTANT = "constant"
 
 # Rows of the pair-distance matrix computed at once: bounds memory at ~_BLOCK * n floats.
 _BLOCK = 2048
-# Upper bound of a fitted practical range, in multiples of the cutoff.
-_MAX_RANGE_FACTOR = 3.0
+#: Upper bound of a fitted practical range, in multiples of the cutoff.
+MAX_RANGE_FACTOR = 3.0
 # Lower bound of a fitted practical range, in multiples of the cutoff.
 _MIN_RANGE_FACTOR = 1e-3
 
@@ -82,7 +86,8 @@ class VariogramModel:
     Parameters
     ----------
     kind : str
-        One of :data:`MODELS`.
+        One of :data:`MODELS`, or :data:`CONSTANT` (nugget and partial sill 0: the
+        variogram of a property that does not vary).
     nugget : float
         Semivariance jump at the origin, squared value units, >= 0.
     psill : float
@@ -97,8 +102,11 @@ class VariogramModel:
     range: float
 
     def __post_init__(self) -> None:
-        if self.kind not in MODELS:
+        if self.kind not in MODELS and self.kind != CONSTANT:
             raise ValueError(f"unknown variogram model {self.kind!r}; choose one of {MODELS}")
+        if self.kind == CONSTANT and (self.nugget != 0 or self.psill != 0):
+            raise ValueError(f"a {CONSTANT!r} variogram has nugget and psill 0, got "
+                             f"{self.nugget}, {self.psill}")
         for name in ("nugget", "psill", "range"):
             if not np.isfinite(getattr(self, name)):
                 raise ValueError(f"variogram {name} must be finite, got {getattr(self, name)}")
@@ -165,6 +173,9 @@ def _structure(kind: str, r: np.ndarray) -> np.ndarray:
     elif kind == "gaussian":
         r *= r
         r *= -3.0
+    elif kind == CONSTANT:
+        r.fill(0.0)
+        return r
     else:
         raise ValueError(f"unknown variogram model {kind!r}; choose one of {MODELS}")
     np.exp(r, out=r)
@@ -268,9 +279,10 @@ def fit_variogram(
 ) -> VariogramModel:
     """Fit one model family by weighted least squares (weights ``N_h / h^2``).
 
-    Bounds: nugget >= ``min_nugget`` (value units squared; e.g. the lab's measurement-error
-    variance, which no nugget can be below), partial sill >= 0, practical range in
-    ``[0.001, 3] x cutoff``.  A small grid of starting values (range at 0.1-2 cutoffs,
+    Bounds, in the units of the variable ``emp`` was computed from (squared log units
+    when it holds logarithms): nugget >= ``min_nugget`` (e.g. the lab's measurement-error
+    variance, which no nugget can be below; the caller converts it to those units),
+    partial sill >= 0, practical range in ``[0.001, 3] x cutoff`` (m).  A small grid of starting values (range at 0.1-2 cutoffs,
     nugget at 0 and at half the first bin's semivariance) is tried and the lowest
     weighted SSE kept.
 
@@ -297,7 +309,7 @@ def fit_variogram(
         raise ValueError(f"min_nugget must be >= 0, got {min_nugget}")
     nug_lo = float(min_nugget) / scale
     lo = np.array([nug_lo, 0.0, _MIN_RANGE_FACTOR])
-    hi = np.array([np.inf, np.inf, _MAX_RANGE_FACTOR])
+    hi = np.array([np.inf, np.inf, MAX_RANGE_FACTOR])
 
     def residuals(theta: np.ndarray) -> np.ndarray:
         nug, ps, rng = theta

@@ -82,3 +82,32 @@ def test_too_few_or_duplicate_samples():
     coords = np.array([[0.0, 0.0], [1.0, 0.0], [1.0, 0.0], [3.0, 3.0]])
     with pytest.raises(ModelFitError, match="duplicate"):
         leave_one_out(coords, np.arange(4.0), model)
+
+
+def test_standardized_errors_are_in_the_units_kriged(meuse, meuse_model):
+    coords, zinc = meuse
+    y = np.log(zinc)
+    raw = leave_one_out(coords, y, meuse_model)
+    np.testing.assert_allclose(raw.standardized, raw.errors / np.sqrt(raw.variances))
+    # Lognormal: errors in mg/kg, standardized errors in log units, equal to those of
+    # ordinary kriging of the logarithms (not of the back-transformed figures).
+    logged = leave_one_out(coords, zinc, meuse_model, log=True)
+    np.testing.assert_allclose(logged.standardized, raw.standardized, rtol=1e-12)
+    assert not np.allclose(logged.standardized, logged.errors / np.sqrt(logged.variances))
+    # common practice, no source: a sound model gives standardized errors of sd ~1
+    assert 0.7 < np.std(logged.standardized) < 1.3
+
+
+def test_limits_clip_the_predictions_before_the_errors():
+    # A step from 0 to 8 % CaCO3: leave-one-out predictions beside it overshoot below 0.
+    x = np.arange(0.0, 200.0, 10.0)
+    coords = np.column_stack([x, (x % 20.0) * 0.5])
+    values = np.where(x < 100.0, 0.0, 8.0)
+    model = VariogramModel("gaussian", 0.01, 10.0, 150.0)
+    free = leave_one_out(coords, values, model)
+    assert (free.errors + values).min() < 0
+    clipped = leave_one_out(coords, values, model, limits=(0.0, 100.0))
+    np.testing.assert_allclose(clipped.errors + values,
+                               np.clip(free.errors + values, 0.0, 100.0), atol=1e-12)
+    assert clipped.rmse < free.rmse
+    np.testing.assert_array_equal(clipped.standardized, free.standardized)

@@ -9,6 +9,7 @@ from scipy.spatial.distance import cdist
 from pmap.errors import ModelFitError
 from pmap.geostats.kriging import (
     SingularSystemError,
+    clip_to_limits,
     kriging_matrix,
     lognormal_ordinary_kriging,
     ordinary_kriging,
@@ -232,3 +233,28 @@ def test_lognormal_formulas_from_log_space_result():
     expected = np.exp(log_res.estimate + log_res.variance / 2 - log_res.lagrange)
     np.testing.assert_allclose(res.estimate, expected, rtol=1e-12)
     np.testing.assert_allclose(res.variance, expected**2 * np.expm1(log_res.variance), rtol=1e-12)
+
+
+def test_clip_to_limits_counts_and_keeps_nan():
+    est = np.array([-0.4, 0.0, 3.0, 101.0, np.nan])
+    clipped, n = clip_to_limits(est, (0.0, 100.0))
+    np.testing.assert_array_equal(clipped, [0.0, 0.0, 3.0, 100.0, np.nan])
+    assert n == 2
+    assert est[0] == -0.4  # a new array; the input is untouched
+    assert clip_to_limits(est[:3], (-np.inf, np.inf))[1] == 0
+    with pytest.raises(ValueError, match="lo < hi"):
+        clip_to_limits(est, (5.0, 5.0))
+
+
+def test_kriging_overshoots_physical_limits_where_clipping_is_needed():
+    # Why clipping exists: negative weights take the kriged CaCO3 below 0 % beside a step
+    # from a calcareous patch to carbonate-free soil (gaussian model, small nugget).
+    x = np.arange(0.0, 200.0, 10.0)
+    coords = np.column_stack([x, np.zeros_like(x)])
+    values = np.where(x < 100.0, 0.0, 8.0)
+    model = VariogramModel("gaussian", 0.01, 10.0, 150.0)
+    targets = np.column_stack([np.arange(0.0, 190.0, 2.5) + 1.25, np.zeros(76)])
+    est = ordinary_kriging(coords, values, targets, model).estimate
+    assert est.min() < -0.1
+    clipped, n = clip_to_limits(est, (0.0, 100.0))
+    assert clipped.min() == 0.0 and n == int(np.sum(est < 0))

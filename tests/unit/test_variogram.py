@@ -9,6 +9,7 @@ import pytest
 
 from pmap.errors import ModelFitError
 from pmap.geostats.variogram import (
+    CONSTANT,
     MODELS,
     EmpiricalVariogram,
     VariogramModel,
@@ -142,3 +143,36 @@ def test_fit_refuses_too_few_bins_and_constant_values():
 def test_empirical_rejects_non_finite():
     with pytest.raises(ValueError, match="finite"):
         empirical_variogram(np.array([[0.0, 0.0], [1.0, 1.0]]), np.array([1.0, np.nan]))
+
+
+@pytest.mark.parametrize("kind", MODELS)
+def test_nugget_floor_is_a_bound_of_the_fit_not_a_clamp_after_it(kind):
+    # Exact semivariances of a model with nugget 0.1, fitted with a floor of 0.3: the
+    # bounded optimum has the nugget at 0.3 and re-balances partial sill and range to the
+    # bins (weights N_h / h^2 favour the short lags). Raising the nugget of the unbounded fit
+    # afterwards would give (0.3, 0.8, 400 m), which overshoots every bin by 0.2.
+    true = VariogramModel(kind, nugget=0.1, psill=0.8, range=400.0)
+    lag = np.linspace(40.0, 600.0, 15)
+    emp = EmpiricalVariogram(lag, true(lag), np.full(15, 100), 600.0)
+    fitted = fit_variogram(emp, kind, min_nugget=0.3)
+    assert fitted.nugget == pytest.approx(0.3, rel=1e-9)
+    clamped = VariogramModel(kind, 0.3, 0.8, 400.0)
+    assert weighted_sse(emp, fitted) < 0.7 * weighted_sse(emp, clamped)
+    # No (partial sill, range) on a grid with the nugget at the floor does better.
+    best_grid = min(
+        weighted_sse(emp, VariogramModel(kind, 0.3, ps, rng))
+        for ps in np.linspace(0.3, 2.0, 69) for rng in np.linspace(100.0, 1800.0, 69)
+    )
+    assert weighted_sse(emp, fitted) <= best_grid * (1 + 1e-6)
+
+
+def test_constant_variogram_is_zero_and_only_zero():
+    zero = VariogramModel(CONSTANT, 0.0, 0.0, 50.0)
+    np.testing.assert_array_equal(zero(np.array([0.0, 1.0, 500.0])), 0.0)
+    assert zero.sill == 0.0 and VariogramModel.from_dict(zero.as_dict()) == zero
+    with pytest.raises(ValueError, match="nugget and psill 0"):
+        VariogramModel(CONSTANT, 0.1, 0.0, 50.0)
+    assert CONSTANT not in MODELS  # never fitted
+    with pytest.raises(ModelFitError, match="unknown variogram model"):
+        fit_variogram(EmpiricalVariogram(np.arange(1.0, 6.0), np.ones(5), np.full(5, 9), 6.0),
+                      CONSTANT)
