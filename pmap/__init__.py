@@ -30,10 +30,13 @@ if TYPE_CHECKING:
     from pmap.config import FieldConfig, load_config
     from pmap.demo import run_demo
     from pmap.pipeline import FieldResult, run_field
+    from pmap.preflight import Problem, check_field
 
 __all__ = [
     "__version__",
     "run_field",
+    "check_field",
+    "Problem",
     "run_demo",
     "load_config",
     "FieldConfig",
@@ -52,6 +55,8 @@ __all__ = [
 _LAZY = {
     "run_field": "pmap.pipeline",
     "FieldResult": "pmap.pipeline",
+    "check_field": "pmap.preflight",
+    "Problem": "pmap.preflight",
     "run_demo": "pmap.demo",
     "load_config": "pmap.config",
     "FieldConfig": "pmap.config",

@@ -1,7 +1,9 @@
 """The ``pmap`` command line: parse, build a config, call the library, map errors to exit codes.
 
-Exit codes: 0 success, 1 unexpected failure, 2 bad command line or configuration,
-3 bad input data, 4 output directory exists, 5 a model could not be fitted.
+Exit codes: 0 success, 1 unexpected failure (a crash, or an input that cannot be read),
+2 bad command line or configuration, 3 bad input data, 4 the output directory cannot be
+written: it exists and may not be replaced, another run holds it, or writing failed (e.g.
+no space left on device; nothing is left half-written), 5 a model could not be fitted.
 """
 
 from __future__ import annotations
@@ -15,11 +17,20 @@ import click
 
 from pmap._version import __version__
 from pmap.cautions import CAUTIONS_SHORT
-from pmap.errors import ConfigError, InputError, ModelFitError, OutputExistsError, PmapError
+from pmap.errors import (
+    ConfigError,
+    InputError,
+    ModelFitError,
+    OutputError,
+    OutputExistsError,
+    PmapError,
+)
 
 __all__ = ["main", "cli"]
 
-_EXIT_CODES = ((ConfigError, 2), (InputError, 3), (OutputExistsError, 4), (ModelFitError, 5))
+#: pmap error -> exit code, first match wins.  OutputExistsError is an OutputError.
+_EXIT_CODES = ((ConfigError, 2), (InputError, 3), (OutputExistsError, 4), (OutputError, 4),
+               (ModelFitError, 5))
 
 
 def _setup_logging(verbose: int, quiet: bool) -> None:
@@ -67,7 +78,7 @@ def _run_safely(func, *args, **kwargs):
         message = " ".join(str(exc).split())
         click.echo(f"pmap: error: {message}", err=True)
         sys.exit(code)
-    except OSError as exc:  # the disk, not the data: say so in one line, no traceback
+    except OSError as exc:  # not one pmap turned into an OutputError: say it in one line
         click.echo(f"pmap: error: cannot read or write a file: {exc}", err=True)
         sys.exit(1)
 
@@ -126,6 +137,46 @@ def run(samples: Path, boundary: Path, out: Path, config_path: Path | None, crs:
     result = _run_safely(run_field, samples, boundary, out, config, overwrite=overwrite,
                          config_path=config_path)
     _report(result, out)
+
+
+@cli.command()
+@click.argument("samples", type=click.Path(path_type=Path, dir_okay=False))
+@click.option("--boundary", "-b", required=True, type=click.Path(path_type=Path, dir_okay=False),
+              help="Field boundary: GeoJSON, GeoPackage or Shapefile.")
+@click.option("--config", "-c", "config_path", type=click.Path(path_type=Path, dir_okay=False),
+              help="Field configuration TOML (see docs/configuration.md).")
+@click.option("--crs", help="CRS of projected x/y sample columns, e.g. EPSG:32616 (sets grid.crs).")
+@click.option("--cell-size", type=float, help="Output cell size in metres (sets grid.cell_size_m).")
+@click.option("--out", "-o", type=click.Path(path_type=Path, file_okay=False),
+              help="Also check that this output directory could be written.")
+@click.option("--overwrite", is_flag=True, help="With --out: as `pmap run --overwrite` would.")
+@click.option("--json", "as_json", is_flag=True, help="Print the problems as JSON.")
+def check(samples: Path, boundary: Path, config_path: Path | None, crs: str | None,
+          cell_size: float | None, out: Path | None, overwrite: bool, as_json: bool) -> None:
+    """List every problem `pmap run` would meet with these inputs, without running the job.
+
+    Exit code 0 when no error is found (warnings are listed but do not fail the check),
+    otherwise the code `pmap run` would exit with for the first error.
+    """
+    import json
+
+    from pmap.config import load_config
+    from pmap.preflight import check_field, exit_code
+
+    config = _run_safely(load_config, config_path)
+    changes = {k: v for k, v in (("crs", crs), ("cell_size_m", cell_size)) if v is not None}
+    if changes:
+        config = _run_safely(config.replace, "grid", **changes)
+    problems = check_field(samples, boundary, config, out_dir=out, overwrite=overwrite)
+    if as_json:
+        click.echo(json.dumps([p.as_dict() for p in problems], indent=2))
+    else:
+        for p in problems:
+            click.echo(f"{p.severity}: [{p.stage}] {p.message}")
+        errors = sum(p.severity == "error" for p in problems)
+        click.echo(f"{samples}: {errors} error(s), {len(problems) - errors} warning(s)"
+                   + ("" if errors else "; pmap run would go ahead"))
+    sys.exit(exit_code(problems))
 
 
 @cli.command("config")

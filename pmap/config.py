@@ -18,7 +18,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
-from pmap._checks import check_number
+from pmap._checks import check_number, check_whole
 from pmap.errors import ConfigError, InputError
 from pmap.geostats.interpolate import KrigingSettings
 from pmap.io.crs import normalise_crs
@@ -60,16 +60,20 @@ class GridSettings:
 
     cell_size_m: float = field(
         default=5.0,
-        metadata={"unit": "m", "doc": "edge length of an output cell (1-100 m)",
-                  "source": "common practice, no source"},
+        metadata={"unit": "m", "doc": "edge length of an output cell, 1-100 m: sample "
+                  "positions (GPS) are good to a few metres and samples lie tens of metres "
+                  "apart, so cells under 1 m add memory but no detail; cells over 100 m leave "
+                  "a field a handful of cells", "source": "common practice, no source"},
     )
     crs: str | None = field(
         default=None,
         metadata={
             "unit": "",
-            "doc": "CRS of projected x/y sample columns (and of a boundary file without one), "
-            "and the run's CRS if projected in metres (e.g. EPSG:32616); unset: samples must be "
-            "lat/lon or carry a CRS, and the run uses the field's UTM zone",
+            "doc": "CRS of x/y sample columns (and of a boundary file without one), e.g. "
+            "EPSG:32616; a geographic CRS (EPSG:4326) reads x/y as longitude/latitude. It is "
+            "also the run's CRS if projected in metres and within grid.max_scale_error over "
+            "the field, else the run uses the field's UTM zone (with a note). Unset: samples "
+            "must be lat/lon or carry a CRS, and the run uses the field's UTM zone",
             "source": "common practice, no source",
         },
     )
@@ -78,9 +82,30 @@ class GridSettings:
         metadata={"unit": "m", "doc": "samples up to this far outside the boundary are kept "
                   "(GPS error)", "source": "common practice, no source"},
     )
+    max_cells: int = field(
+        default=10_000_000,
+        metadata={"unit": "cells", "doc": "largest grid (columns x rows over the field's "
+                  "extent) a run may build; checked before the grid is allocated. pmap budgets "
+                  "512 bytes per cell plus 336 MiB and the kriging blocks (measured on the demo), so the "
+                  "default is about 5 GiB: a 1,000 ha extent at 1 m cells. Raise it on a machine with "
+                  "more memory", "source": "common practice, no source"},
+    )
+    max_scale_error: float = field(
+        default=0.005,
+        metadata={"unit": "fraction", "doc": "largest departure from 1 of the linear scale "
+                  "(meridional, parallel, and square root of areal) of grid.crs over the "
+                  "field for it to be the run's CRS; otherwise grid.crs only says how to read "
+                  "coordinates and the run works in the field's UTM zone. UTM's scale is "
+                  "0.9996 on the central meridian and about 1.001 at a zone's edge; Web "
+                  "Mercator's is 1.31 at 40 degrees latitude. At most 0.005: a larger "
+                  "distortion misstates areas by more than the 1 % area check allows",
+                  "source": "Snyder 1987, Map Projections - A Working Manual, USGS PP 1395"},
+    )
 
     def __post_init__(self) -> None:
-        check_number("grid.cell_size_m", self.cell_size_m, gt=0, le=100)
+        check_number("grid.cell_size_m", self.cell_size_m, ge=1, le=100)
+        check_whole("grid.max_cells", self.max_cells, ge=1)
+        check_number("grid.max_scale_error", self.max_scale_error, ge=0.001, le=0.005)
         check_number("grid.sample_buffer_m", self.sample_buffer_m, ge=0, finite=True)
         if self.crs is not None:
             try:
@@ -124,11 +149,16 @@ def _section_as_dict(obj: Any) -> dict[str, Any]:
 def load_config(path: str | Path | None = None) -> FieldConfig:
     """Read a field configuration from a TOML file; ``None`` gives the defaults.
 
+    The file is UTF-8 (TOML's encoding); a UTF-8 byte-order mark, as some editors write, is
+    skipped, and a file with a UTF-16 byte-order mark ("Unicode" in some editors) is
+    decoded as UTF-16.
+
     Raises
     ------
     ConfigError
-        The file is missing or not TOML, a section or key is unknown, or a value has the
-        wrong type or is out of range.  The message names the file and the key.
+        The file is missing, unreadable, not UTF-8/UTF-16 text or not TOML, a section or key
+        is unknown, or a value has the wrong type or is out of range.  The message names the
+        file and the key.
     """
     if path is None:
         return FieldConfig()
@@ -136,8 +166,20 @@ def load_config(path: str | Path | None = None) -> FieldConfig:
     if not path.is_file():
         raise ConfigError(f"config file not found: {path}")
     try:
-        data = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise ConfigError(f"{path}: cannot read the config file ({exc.strerror or exc})") from exc
+    codec = "utf-16" if raw.startswith((b"\xff\xfe", b"\xfe\xff")) else "utf-8-sig"
+    try:
+        text = raw.decode(codec)
+    except UnicodeDecodeError as exc:
+        raise ConfigError(
+            f"{path}: not {'UTF-16' if codec == 'utf-16' else 'UTF-8'} text (byte {exc.start} "
+            f"is 0x{raw[exc.start]:02x}): save the file as UTF-8"
+        ) from exc
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML ({exc})") from exc
     return config_from_dict(data, source=str(path))
 

@@ -10,6 +10,7 @@ finished, and an existing one is replaced only after the new one is whole.
 
 from __future__ import annotations
 
+import contextlib
 import logging
 import warnings
 from dataclasses import dataclass, field
@@ -18,13 +19,14 @@ from typing import Any
 
 import numpy as np
 
+from pmap._warnings import collect_warnings, issue_warnings
 from pmap.config import FieldConfig, load_config
-from pmap.errors import ConfigError, InputError, InsufficientDataError, PmapWarning
+from pmap.errors import ConfigError, InputError, PmapError, PmapWarning
 from pmap.geostats.interpolate import Interpolation, interpolate
 from pmap.grid import GridSpec
 from pmap.io import boundary as boundary_io
-from pmap.io.crs import is_projected_metres, normalise_crs, utm_crs_for
-from pmap.io.samples import SampleTable, load_samples
+from pmap.io.crs import choose_working_crs, normalise_crs, to_pyproj
+from pmap.io.samples import SampleTable, duplicate_tolerance_m, load_samples
 from pmap.outputs import check_output_dir, write_outputs
 from pmap.prescribe import rates as rate_rules
 from pmap.prescribe.rates import RateRule, resolve_rule
@@ -33,7 +35,8 @@ from pmap.soil.availability import SoilPools, partition_total_p
 from pmap.soil.conversions import convert_soil_test
 from pmap.soil.fixation import FixationRisk, fixation_risk
 
-__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "KRIGED_PROPERTIES"]
+__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "krige_properties",
+           "require_phosphorus", "driver_method", "rate_rule_for", "KRIGED_PROPERTIES"]
 
 log = logging.getLogger(__name__)
 
@@ -41,20 +44,32 @@ log = logging.getLogger(__name__)
 KRIGED_PROPERTIES: tuple[str, ...] = (
     "ph", "total_p", "stp", "caco3", "clay", "base_saturation", "om",
 )
-#: Properties whose map the job cannot do without when present: too few samples is an error.
-#: For the others it is a warning and the layer is left out.
+#: Properties whose map the job cannot do without when present: if one cannot be mapped (too
+#: few samples, no fittable variogram, bad values) the run stops with a message naming it.
+#: Any other property that cannot be mapped is left out with a warning; a constant one is
+#: mapped as that constant (pmap.geostats.interpolate).
 _ESSENTIAL = ("ph", "total_p", "stp")
 
 
 @dataclass(frozen=True)
 class FieldInputs:
-    """Checked inputs of one field, all in the run's projected CRS."""
+    """Checked inputs of one field, all in the run's projected CRS.
+
+    ``notes`` are sentences for the record (how the working CRS was chosen, the field's
+    area in it and on the ellipsoid, then the samples' own notes).  ``crs_choice`` is the
+    working-CRS record of :func:`pmap.io.crs.choose_working_crs` (``requested``, ``used``,
+    ``reason``, ``scale_error``, ``requested_scale_error``, ``max_scale_error``) plus
+    ``areas`` from :func:`pmap.io.boundary.check_field_area` (``working_crs_ha``,
+    ``geodesic_ha``, ``difference``).
+    """
 
     samples: SampleTable
     boundary: Any  # shapely (Multi)Polygon in grid.crs
     grid: GridSpec
     n_read: int
     dropped_outside: tuple[str, ...]
+    notes: tuple[str, ...] = ()
+    crs_choice: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass
@@ -83,13 +98,28 @@ def prepare_inputs(
     """Read, check and reproject the samples and the boundary; fix the run's grid."""
     user_crs = normalise_crs(config.grid.crs) if config.grid.crs else None
     outline, outline_crs = boundary_io.read_boundary(boundary_path, crs=user_crs)
-    if user_crs and is_projected_metres(user_crs):
-        working_crs = user_crs
-    else:
-        working_crs = utm_crs_for(*boundary_io.lonlat_centroid(outline, outline_crs))
-    boundary = boundary_io.project_boundary(outline, outline_crs, working_crs,
-                                            Path(boundary_path).name)
-    samples = load_samples(samples_path, config.samples, input_crs=user_crs, working_crs=working_crs)
+    # The user's CRS reads coordinates that carry none; it is the working CRS only if it
+    # keeps lengths true over the field (measured), else the field's UTM zone is.
+    lon, lat = boundary_io.field_lonlat_points(outline, outline_crs)
+    working_crs, crs_choice = choose_working_crs(user_crs, lon, lat, config.grid.max_scale_error)
+    if user_crs is not None and working_crs != user_crs and to_pyproj(user_crs).is_projected:
+        warnings.warn(f"{crs_choice['reason']}; the outputs are in {working_crs}",
+                      PmapWarning, stacklevel=2)
+    boundary_name = Path(boundary_path).name
+    boundary = boundary_io.project_boundary(outline, outline_crs, working_crs, boundary_name)
+    areas = boundary_io.check_field_area(
+        boundary, working_crs, boundary_io.geodesic_area_m2(outline, outline_crs), boundary_name)
+    crs_choice["areas"] = areas
+    notes = (
+        f"working CRS {working_crs}: {crs_choice['reason']}",
+        f"field area {areas['working_crs_ha']:.3f} ha in {working_crs}, "
+        f"{areas['geodesic_ha']:.3f} ha geodesic on WGS 84 ({areas['difference']:+.3%})",
+    )
+    samples = load_samples(
+        samples_path, config.samples, input_crs=user_crs, working_crs=working_crs,
+        duplicate_tolerance_m=duplicate_tolerance_m(config.samples, config.grid.cell_size_m),
+    )
+    notes += tuple(getattr(samples, "notes", ()))
     n_read = len(samples.ids)
     inside = boundary_io.samples_inside(samples, boundary, buffer_m=config.grid.sample_buffer_m)
     if not inside.any():
@@ -108,34 +138,54 @@ def prepare_inputs(
             stacklevel=2,
         )
         samples = samples.subset(inside)
-    grid = boundary_io.grid_for_boundary(boundary, working_crs, config.grid.cell_size_m)
-    return FieldInputs(samples, boundary, grid, n_read, dropped)
+    grid = boundary_io.grid_for_boundary(
+        boundary, working_crs, config.grid.cell_size_m, max_cells=config.grid.max_cells,
+        n_samples=len(samples), chunk_size=config.kriging.chunk_size)
+    return FieldInputs(samples, boundary, grid, n_read, dropped, notes, crs_choice)
 
 
-def _krige_properties(inputs: FieldInputs, config: FieldConfig) -> dict[str, Interpolation]:
-    samples, targets = inputs.samples, inputs.grid.inside_coords()
+def krige_properties(
+    samples: SampleTable, targets: np.ndarray, config: FieldConfig,
+    names: tuple[str, ...] = KRIGED_PROPERTIES,
+) -> dict[str, Interpolation]:
+    """Krige each of ``names`` that the samples hold at ``targets`` (m, shape (m, 2)).
+
+    An essential property (pH, total P, soil-test P) that cannot be mapped stops the run;
+    any other is left out with a warning.  ``targets`` may be empty: the variograms are
+    then fitted and cross-validated only (``pmap check``).
+    """
     results: dict[str, Interpolation] = {}
-    for name in KRIGED_PROPERTIES:
+    for name in names:
         if name not in samples.values:
             continue
         values = samples.values[name]
         ok = np.isfinite(values)
         try:
             results[name] = interpolate(
-                name, samples.coords[ok], values[ok], targets, config.kriging
+                name, samples.coords[ok], values[ok], targets, config.kriging,
+                ids=samples.ids[ok], rows=samples.rows[ok], limits=_LIMITS.get(name),
             )
-        except InsufficientDataError as exc:
+        except PmapError as exc:
+            # Only the properties the prescription cannot do without stop the run; an
+            # optional layer that cannot be mapped is left out with a warning.
             if name in _ESSENTIAL:
-                raise InsufficientDataError(f"{samples.source}: {exc}") from exc
+                raise type(exc)(
+                    f"{samples.source}: {exc} ({name} is one of the properties the soil model "
+                    "and the rates need, so the run stops)"
+                ) from exc
             warnings.warn(f"{samples.source}: {name} not mapped: {exc}", PmapWarning, stacklevel=2)
         else:
             log.info("kriged %s from %d samples", name, int(ok.sum()))
-    if "total_p" not in results and "stp" not in results:
+    return results
+
+
+def require_phosphorus(samples: SampleTable) -> None:
+    """Stop when the samples hold neither total P nor a soil-test P: nothing to map rates on."""
+    if "total_p" not in samples.values and "stp" not in samples.values:
         raise InputError(
             f"{samples.source}: neither a total P nor a soil-test P column was found; "
             "name one in the config (samples.total_p_column or samples.stp_column)"
         )
-    return results
 
 
 def run_field(
@@ -159,7 +209,8 @@ def run_field(
         Output directory; refused if it exists and is not empty, unless ``overwrite``.
     config : FieldConfig, path to a TOML file, or None for the defaults.
     overwrite : bool
-        Replace an existing output directory (only once the new one is complete).
+        Replace a previous pmap output, only when its ``manifest.json`` lists every file in
+        it unchanged, and only once the new one is complete.
     config_path : path, optional
         Where ``config`` was read from, for the record when a FieldConfig is passed.
 
@@ -171,29 +222,70 @@ def run_field(
         config_path = config if config is not None else config_path
         config = load_config(config)
     out_dir = Path(out_dir)
-    check_output_dir(out_dir, overwrite, [Path(samples), Path(boundary)]
-                     + ([Path(config_path)] if config_path else []))
+    transaction = check_output_dir(out_dir, overwrite, [Path(samples), Path(boundary)]
+                                   + ([Path(config_path)] if config_path else []))
 
     caught: list[warnings.WarningMessage] = []
     try:
-        with warnings.catch_warnings(record=True) as caught:
-            warnings.simplefilter("always", PmapWarning)
+        with collect_warnings() as caught:
             inputs = prepare_inputs(samples, boundary, config)
             result = _compute(inputs, config, out_dir)
-    finally:  # show them as usual, also when a stage fails: they often say why
-        for w in caught:
-            warnings.showwarning(w.message, w.category, w.filename, w.lineno)
+    except BaseException:  # a failed stage's warnings often say why; its error still wins
+        transaction.close()
+        with contextlib.suppress(Warning):
+            issue_warnings(caught)
+        raise
+    try:
+        issue_warnings(caught)  # under the caller's filters: "error" stops here, before output
+    except BaseException:
+        transaction.close()
+        raise
     result.warnings = [str(w.message) for w in caught if issubclass(w.category, PmapWarning)]
 
     write_outputs(result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
-                  config_path=Path(config_path) if config_path else None)
+                  config_path=Path(config_path) if config_path else None,
+                  transaction=transaction)  # publishes under the lock taken by the check
     return result
+
+
+def driver_method(samples: SampleTable, config: FieldConfig) -> str:
+    """Soil-test method of the values that will drive zones and rates.
+
+    The lab's method when the samples hold a soil-test P, else the method of the model's
+    soil-test equivalent (``[soil_test_equivalent]``).
+    """
+    if "stp" in samples.values:
+        return samples.stp_method or config.rates.soil_test_method or "mehlich3_icp"
+    return config.soil_test_equivalent.method
+
+
+def rate_rule_for(method: str, config: FieldConfig) -> RateRule:
+    """The rate rule for soil tests by ``method``, checked before any kriging.
+
+    Raises
+    ------
+    ConfigError
+        The rule has no published default for the method, or it asks for a conversion
+        pmap refuses (to or from Olsen).
+    """
+    rule = resolve_rule(config.rates, method)
+    if rule.soil_test_method != method and "olsen" in (method, rule.soil_test_method):
+        raise ConfigError(
+            f"rates.soil_test_method is {rule.soil_test_method} but the soil-test P is "
+            f"{method}: pmap does not convert Olsen values for the rate rule (the published "
+            "regression gives implausible values at common levels); leave "
+            "rates.soil_test_method unset and give Olsen-based rates.critical_ppm and "
+            "rates.maintenance_limit_ppm"
+        )
+    return rule
 
 
 def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldResult:
     """Every stage between ingest and output: kriging, soil model, zones and rates."""
     grid = inputs.grid
-    kriged = _krige_properties(inputs, config)
+    require_phosphorus(inputs.samples)
+    rule = rate_rule_for(driver_method(inputs.samples, config), config)  # fail before kriging
+    kriged = krige_properties(inputs.samples, grid.inside_coords(), config)
     estimates = _physical_estimates(kriged)
 
     # Soil model on the kriged layers.
@@ -210,17 +302,8 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
 
     # The soil-test P that drives zones and rates, and the rule for its method.
     stp, method, stp_source = _rate_driver(estimates, pools, inputs.samples.stp_method, config)
-    rule = resolve_rule(config.rates, method)
     rule_stp = stp
     if rule.soil_test_method != method:
-        if "olsen" in (method, rule.soil_test_method):
-            raise ConfigError(
-                f"rates.soil_test_method is {rule.soil_test_method} but the soil-test P is "
-                f"{method}: pmap does not convert Olsen values for the rate rule (the published "
-                "regression gives implausible values at common levels); leave "
-                "rates.soil_test_method unset and give Olsen-based rates.critical_ppm and "
-                "rates.maintenance_limit_ppm"
-            )
         rule_stp = convert_soil_test(stp, method, rule.soil_test_method)
         stp_source["rule_conversion"] = (
             f"rates.critical_ppm and rates.maintenance_limit_ppm refer to "
@@ -266,31 +349,18 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     )
 
 
-#: Physical limits of kriged properties; ordinary kriging can overshoot them near the edges
-#: of the data (e.g. CaCO3 below 0 % beside calcareous patches).
+#: Physical limits of kriged properties (their units), passed to interpolate(limits=...):
+#: ordinary kriging can overshoot them near the edges of the data (e.g. CaCO3 below 0 %
+#: beside calcareous patches), and the clipped estimate is the one every output uses.
 _LIMITS: dict[str, tuple[float, float]] = {
-    "total_p": (0.0, np.inf), "stp": (0.0, np.inf), "caco3": (0.0, 100.0),
+    "ph": (0.0, 14.0), "total_p": (0.0, np.inf), "stp": (0.0, np.inf), "caco3": (0.0, 100.0),
     "clay": (0.0, 100.0), "base_saturation": (0.0, 100.0), "om": (0.0, 100.0),
 }
 
 
 def _physical_estimates(kriged: dict[str, Interpolation]) -> dict[str, np.ndarray]:
-    """Kriged estimates clipped to their physical range, with a warning where that bites."""
-    estimates = {}
-    for name, interp in kriged.items():
-        est = interp.result.estimate
-        if name in _LIMITS:
-            lo, hi = _LIMITS[name]
-            outside = int(np.count_nonzero((est < lo) | (est > hi)))
-            if outside:
-                warnings.warn(
-                    f"{name}: {outside} cell(s) kriged outside {lo:g}-{hi:g} were set to the "
-                    "limit (ordinary kriging can overshoot near extreme samples)",
-                    PmapWarning, stacklevel=3,
-                )
-                est = np.clip(est, lo, hi)
-        estimates[name] = est
-    return estimates
+    """The kriged estimate per property, already clipped to ``_LIMITS`` by ``interpolate``."""
+    return {name: interp.result.estimate for name, interp in kriged.items()}
 
 
 def _rate_driver(
@@ -304,7 +374,7 @@ def _rate_driver(
             "source": "measured", "method": method,
             "description": f"measured soil-test P ({method}), kriged",
         }
-    if pools is None:  # guarded by _krige_properties: total P or soil-test P is present
+    if pools is None:  # guarded by require_phosphorus: total P or soil-test P is present
         raise InputError("no soil-test P and no total P: nothing to base rates on")
     equivalent = config.soil_test_equivalent
     description = (

@@ -1,10 +1,15 @@
 """The edges of pmap: samples and boundaries in, GeoTIFFs and zone polygons out.
 
-Submodules: :mod:`~pmap.io.crs` (CRS normalisation, UTM zones), :mod:`~pmap.io.samples`
-(reading sample tables), with :mod:`~pmap.io.columns` (which column holds what) and
-:mod:`~pmap.io.values` (messy lab values), :mod:`~pmap.io.boundary`,
-:mod:`~pmap.io.rasters` (Cloud-Optimized GeoTIFF) and :mod:`~pmap.io.vectors` (GeoPackage,
-Shapefile, GeoJSON).  Import from the submodules.
+Submodules: :mod:`~pmap.io.crs` (CRS normalisation, working-CRS choice by scale error),
+:mod:`~pmap.io.samples` (reading sample tables), with :mod:`~pmap.io.delimited` (encodings,
+separators, preambles, spreadsheet detection), :mod:`~pmap.io.columns` (which column holds
+what), :mod:`~pmap.io.units` (units in headers, conversions, plausibility) and
+:mod:`~pmap.io.values` (messy lab values), :mod:`~pmap.io.boundary` (field polygons, area
+check, grid), :mod:`~pmap.io.rasters` (Cloud-Optimized GeoTIFF), :mod:`~pmap.io.vectors`
+(GeoPackage, Shapefile, GeoJSON), :mod:`~pmap.io.manifest` (``manifest.json``, SHA-256) and
+:mod:`~pmap.io.publish` (the output directory as a locked, atomic transaction).  Import from
+the submodules.
 """
 
-__all__ = ["crs", "samples", "columns", "values", "boundary", "rasters", "vectors"]
+__all__ = ["crs", "samples", "delimited", "columns", "units", "values", "boundary", "rasters",
+           "vectors", "manifest", "publish"]
