@@ -17,20 +17,9 @@ import click
 
 from pmap._version import __version__
 from pmap.cautions import CAUTIONS_SHORT
-from pmap.errors import (
-    ConfigError,
-    InputError,
-    ModelFitError,
-    OutputError,
-    OutputExistsError,
-    PmapError,
-)
+from pmap.errors import PmapError, exit_code_of
 
 __all__ = ["main", "cli"]
-
-#: pmap error -> exit code, first match wins.  OutputExistsError is an OutputError.
-_EXIT_CODES = ((ConfigError, 2), (InputError, 3), (OutputExistsError, 4), (OutputError, 4),
-               (ModelFitError, 5))
 
 
 def _setup_logging(verbose: int, quiet: bool) -> None:
@@ -74,7 +63,7 @@ def _run_safely(func, *args, **kwargs):
     try:
         return func(*args, **kwargs)
     except PmapError as exc:
-        code = next((c for cls, c in _EXIT_CODES if isinstance(exc, cls)), 1)
+        code = exit_code_of(exc)
         message = " ".join(str(exc).split())
         click.echo(f"pmap: error: {message}", err=True)
         sys.exit(code)

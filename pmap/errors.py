@@ -16,6 +16,7 @@ __all__ = [
     "OutputExistsError",
     "OutputError",
     "PmapWarning",
+    "exit_code_of",
 ]
 
 
@@ -50,3 +51,11 @@ class OutputExistsError(OutputError, FileExistsError):
 
 class PmapWarning(UserWarning):
     """Something pmap did on the user's behalf that they should know about."""
+
+
+def exit_code_of(exc: BaseException) -> int:
+    """The CLI's exit code for an error: 2 config, 3 input data, 4 output, 5 model fit, 1 other."""
+    for cls, code in ((ConfigError, 2), (InputError, 3), (OutputError, 4), (ModelFitError, 5)):
+        if isinstance(exc, cls):
+            return code
+    return 1

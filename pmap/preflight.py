@@ -19,15 +19,7 @@ import numpy as np
 
 from pmap._warnings import collect_warnings
 from pmap.config import FieldConfig, load_config
-from pmap.errors import (
-    ConfigError,
-    InputError,
-    ModelFitError,
-    OutputError,
-    OutputExistsError,
-    PmapError,
-    PmapWarning,
-)
+from pmap.errors import PmapError, PmapWarning, exit_code_of
 
 __all__ = ["Problem", "check_field", "exit_code"]
 
@@ -42,21 +34,18 @@ class Problem:
     stage: str
     message: str
     error_type: str = ""
+    exit_code: int = 0
 
-    def as_dict(self) -> dict[str, str]:
+    def as_dict(self) -> dict[str, str | int]:
         return {"severity": self.severity, "stage": self.stage, "message": self.message,
-                "error_type": self.error_type}
-
-
-_EXIT_CODES = ((ConfigError, 2), (InputError, 3), (OutputError, 4), (OutputExistsError, 4),
-               (ModelFitError, 5))
+                "error_type": self.error_type, "exit_code": self.exit_code}
 
 
 def exit_code(problems: list[Problem]) -> int:
     """The CLI's exit code for a check: 0 without errors, else the first error's code."""
     for problem in problems:
         if problem.severity == "error":
-            return next((code for cls, code in _EXIT_CODES if cls.__name__ == problem.error_type), 1)
+            return problem.exit_code
     return 0
 
 
@@ -104,7 +93,7 @@ def check_field(
             except PmapError as exc:
                 value = None
                 problems.append(Problem("error", stage, " ".join(str(exc).split()),
-                                        type(exc).__name__))
+                                        type(exc).__name__, exit_code_of(exc)))
         for w in caught:
             if issubclass(w.category, PmapWarning):
                 problems.append(Problem("warning", stage, " ".join(str(w.message).split())))

@@ -65,3 +65,27 @@ def test_cli_exit_code_and_one_line_per_problem(tmp_path):
     lines = [line for line in proc.stdout.splitlines() if line.startswith("error:")]
     assert len(lines) >= 2
     assert "Traceback" not in proc.stderr
+
+
+def test_exit_codes_follow_the_error_family_including_subclasses():
+    from pmap.errors import (
+        ConfigError,
+        InputError,
+        InsufficientDataError,
+        ModelFitError,
+        OutputError,
+        OutputExistsError,
+        exit_code_of,
+    )
+    from pmap.preflight import Problem
+
+    # common practice, no source: pmap's documented exit codes (README)
+    assert [exit_code_of(e("x")) for e in (ConfigError, InputError, InsufficientDataError,
+                                           OutputExistsError, OutputError, ModelFitError)] == [
+        2, 3, 3, 4, 4, 5]
+    assert exit_code_of(RuntimeError("x")) == 1
+    too_few = InsufficientDataError("ph: 10 samples")
+    problems = [Problem("warning", "kriging om", "w"),
+                Problem("error", "kriging ph", str(too_few), type(too_few).__name__,
+                        exit_code_of(too_few))]
+    assert exit_code(problems) == 3

@@ -68,7 +68,7 @@ def test_zone_rate_raster_matches_the_polygons(demo_inputs, tmp_path):
 
 def _bray_samples(demo_inputs, tmp_path):
     table = pd.read_csv(demo_inputs["samples"])
-    # Source: Ohio State FAQ, Bray-1 = -8.08 + 0.832 x Mehlich-3 ICP (see DOMAIN.md)
+    # Source: Ohio State FAQ, Bray-1 = -8.08 + 0.832 x Mehlich-3 ICP (Ohio State University Extension soil-test FAQ)
     bray = convert_soil_test(table["mehlich3_p"].to_numpy(), "mehlich3_icp", "bray1")
     samples = tmp_path / "bray.csv"
     table.drop(columns=["mehlich3_p"]).assign(bray1_p=np.round(bray, 1)).to_csv(samples, index=False)

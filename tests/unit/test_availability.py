@@ -72,7 +72,7 @@ def test_fe_al_dominates_acid_ca_dominates_alkaline():
 
 
 def test_highly_weathered_high_total_low_available():
-    # Source: DOMAIN.md section 2 (highly weathered soils hold much P as occluded P)
+    # Source: Walker & Syers (1976), Geoderma 15:1-19 (occluded P dominates in highly weathered soils)
     ph = np.full(3, 6.5)
     moderate = partition_total_p(ph, 600.0, PartitionParams(weathering="moderate"))
     high = partition_total_p(ph, 1200.0, PartitionParams(weathering="high"))

@@ -25,7 +25,7 @@ from pmap.soil.conversions import (
 
 
 def test_oxide_factors():
-    # Source: IUPAC masses via the periodictable package (DOMAIN.md section 4)
+    # Source: IUPAC masses via the periodictable package
     assert round(P2O5_PER_P, 4) == 2.2913
     assert round(P_PER_P2O5, 4) == 0.4364
     assert p2o5_to_p(p_to_p2o5(7.0)) == pytest.approx(7.0)

@@ -492,13 +492,13 @@ def test_errors_that_are_not_writes_pass_through(tmp_path):
 
 
 def test_output_errors_have_their_own_exit_code():
-    from pmap.cli import _EXIT_CODES, _run_safely
+    from pmap.cli import _run_safely
+    from pmap.errors import exit_code_of
 
     assert issubclass(OutputExistsError, OutputError)
     assert issubclass(OutputExistsError, FileExistsError) and issubclass(OutputError, OSError)
-    codes = {cls: code for cls, code in _EXIT_CODES}
-    assert codes[OutputError] == codes[OutputExistsError] == 4
-    assert 1 not in codes.values(), "1 is a crash's code"
+    assert exit_code_of(OutputError("x")) == exit_code_of(OutputExistsError("x")) == 4
+    assert exit_code_of(RuntimeError("x")) == 1, "1 is a crash's code"
 
     def no_space():
         raise OutputError("cannot write the outputs to out: no space left on device")

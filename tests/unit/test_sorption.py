@@ -16,17 +16,17 @@ from pmap.soil.sorption import (
 def test_moderately_weathered_check_values():
     ph = np.array([5.0, 5.5, 6.0, 6.5, 7.0])
     got = psp_moderately_weathered(80.0, ph)
-    # Source: Jones, Cole, Sharpley & Williams (1984), SSSAJ 48:800-805 (DOMAIN.md check values)
+    # Source: Jones, Cole, Sharpley & Williams (1984), SSSAJ 48:800-805
     np.testing.assert_allclose(got, [0.282, 0.340, 0.398, 0.456, 0.514], atol=5e-4)
 
 
 def test_calcareous_check_value():
-    # Source: Jones, Cole, Sharpley & Williams (1984), SSSAJ 48:800-805 (DOMAIN.md check value)
+    # Source: Jones, Cole, Sharpley & Williams (1984), SSSAJ 48:800-805
     assert psp_calcareous(10.0) == pytest.approx(0.519, abs=5e-4)
 
 
 def test_highly_weathered_check_value():
-    # Source: Jones, Cole, Sharpley & Williams (1984), SSSAJ 48:800-805 (DOMAIN.md check value)
+    # Source: Jones, Cole, Sharpley & Williams (1984), SSSAJ 48:800-805
     assert psp_highly_weathered(40.0) == pytest.approx(0.1221, abs=5e-5)
 
 
@@ -37,7 +37,7 @@ def test_slightly_weathered_equation():
 
 def test_initial_pools_check_values():
     active, stable = initial_pools(25.0, 0.4)
-    # Source: EPIC pool initialisation (Jones et al. 1984; DOMAIN.md check values)
+    # Source: EPIC pool initialisation (Jones et al. 1984)
     assert active == pytest.approx(37.5)
     assert stable == pytest.approx(150.0)
 

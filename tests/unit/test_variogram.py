@@ -24,10 +24,10 @@ from pmap.geostats.variogram import (
 def test_meuse_cutoff_and_first_bins(meuse):
     coords, zinc = meuse
     emp = empirical_variogram(coords, np.log(zinc))
-    # Source: gstat vignette / variogram documentation (Pebesma), DOMAIN.md section 6
+    # Source: gstat vignette / variogram documentation (Pebesma)
     assert emp.cutoff == pytest.approx(1596.62, abs=0.005)
     assert len(emp.lag) == 15
-    # Source: gstat vignette / variogram documentation (Pebesma), DOMAIN.md section 6
+    # Source: gstat vignette / variogram documentation (Pebesma)
     assert list(emp.count[:3]) == [57, 299, 419]
     np.testing.assert_allclose(emp.lag[:3], [79.29, 163.97, 267.36], atol=0.005)
     np.testing.assert_allclose(emp.gamma[:3], [0.12345, 0.21622, 0.30279], atol=0.000005)
