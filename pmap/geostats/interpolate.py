@@ -39,6 +39,7 @@ from pmap.geostats.kriging import (
     SingularSystemError,
     check_duplicates,
     clip_to_limits,
+    lognormal_log_moments,
     lognormal_ordinary_kriging,
     ordinary_kriging,
 )
@@ -282,6 +283,19 @@ class Interpolation:
     outliers: tuple[Outlier, ...] = ()
     notes: tuple[str, ...] = ()
     diagnostics: dict[str, Any] = field(default_factory=dict)
+
+    def kriged_moments(self) -> tuple[np.ndarray, np.ndarray]:
+        """Mean and variance of the kriging distribution in the space that was kriged.
+
+        For lognormal kriging (``log``) these are the log-space kriged value and variance
+        (:func:`pmap.geostats.kriging.lognormal_log_moments`); otherwise the estimate and the
+        kriging variance in the property's units.  Probabilities and quantiles of the
+        property at a target follow from a normal distribution with these moments.
+        """
+        if self.log:
+            return lognormal_log_moments(self.result.estimate, self.result.variance,
+                                         self.result.lagrange)
+        return self.result.estimate, self.result.variance
 
     def as_dict(self) -> dict[str, Any]:
         """Summary without the target arrays (JSON-able)."""

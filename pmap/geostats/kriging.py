@@ -34,6 +34,7 @@ __all__ = [
     "ordinary_kriging",
     "lognormal_ordinary_kriging",
     "lognormal_back_transform",
+    "lognormal_log_moments",
     "kriging_matrix",
     "check_duplicates",
     "clip_to_limits",
@@ -263,6 +264,31 @@ def lognormal_back_transform(
     estimate = np.exp(log_estimate + 0.5 * log_variance - np.asarray(lagrange, dtype=float))
     variance = estimate**2 * np.expm1(log_variance)
     return estimate, np.maximum(variance, 0.0)
+
+
+def lognormal_log_moments(
+    estimate: np.ndarray, variance: np.ndarray, lagrange: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
+    """Invert :func:`lognormal_back_transform`: the log-space kriged value and variance.
+
+    ``s2 = log(1 + variance / estimate^2)`` and ``y* = log(estimate) - s2 / 2 + mu``, so that
+    ``lognormal_back_transform(y*, s2, mu)`` gives ``estimate, variance`` back.  These are the
+    mean and variance of the Gaussian kriging distribution of ``log Z``, from which
+    probabilities and quantiles of a lognormally kriged property follow.
+
+    Parameters
+    ----------
+    estimate, variance : numpy.ndarray
+        Back-transformed estimate (> 0) and variance (>= 0), value units.
+    lagrange : numpy.ndarray
+        Log-space Lagrange term ``mu`` (:attr:`KrigingResult.lagrange`).
+    """
+    estimate = np.asarray(estimate, dtype=float)
+    variance = np.maximum(np.asarray(variance, dtype=float), 0.0)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_variance = np.log1p(variance / estimate**2)
+        log_estimate = np.log(estimate) - 0.5 * log_variance + np.asarray(lagrange, dtype=float)
+    return log_estimate, log_variance
 
 
 def lognormal_ordinary_kriging(
