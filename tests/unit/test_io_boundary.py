@@ -12,17 +12,22 @@ import shapely
 from pyproj import Transformer
 from shapely.geometry import LineString, Point, Polygon, box
 
-from pmap.errors import ConfigError, InputError
+from pmap.errors import ConfigError, InputError, OutputExistsError, PmapWarning
 from pmap.grid import GridSpec, estimate_grid, estimate_memory_bytes
 from pmap.io.boundary import (
+    boundary_features,
     boundary_lonlat_centroid,
     check_field_area,
+    feature_slugs,
     field_lonlat_points,
     field_mask,
     geodesic_area_m2,
     grid_for_boundary,
     load_boundary,
+    read_boundary,
     samples_inside,
+    select_boundary,
+    split_boundary,
 )
 from pmap.io.samples import SampleTable
 
@@ -57,9 +62,192 @@ def test_reprojection_matches_pyproj(tmp_path):
 
 def test_multiple_features_are_dissolved(tmp_path):
     parts = [box(0, 0, 100, 100), box(100, 0, 200, 100), box(500, 0, 600, 100)]
-    geom = load_boundary(_save(tmp_path, "m.gpkg", parts), UTM)
+    with pytest.warns(PmapWarning, match="3 features merged into one field: f0, f1, f2"):
+        geom = load_boundary(_save(tmp_path, "m.gpkg", parts), UTM)
     assert geom.geom_type == "MultiPolygon" and len(geom.geoms) == 2
     assert geom.area == pytest.approx(30_000.0)
+
+
+THREE = [box(0, 0, 100, 100), box(300, 0, 400, 100), box(600, 0, 800, 100)]
+THREE_NAMES = ["North 40", "Creek", "Home"]
+
+
+def _fields(tmp_path, names=THREE_NAMES, parts=THREE, column="Field_Name", name="fields.gpkg",
+            crs=UTM, **extra):
+    path = tmp_path / name
+    gpd.GeoDataFrame({column: names, **extra}, geometry=parts, crs=crs).to_file(path)
+    return path
+
+
+def _no_warning():
+    cm = warnings.catch_warnings()
+    cm.__enter__()
+    warnings.simplefilter("error")
+    return cm
+
+
+def test_features_are_named_by_a_name_like_attribute_in_any_case(tmp_path):
+    # common practice, no source: farm GIS exports name fields in a "Field_Name"-like column.
+    path = _fields(tmp_path, farm_id=np.array([7, 8, 9], dtype=np.int64))
+    feats = boundary_features(path)
+    assert [(f.index, f.name, f.position) for f in feats] == [
+        (0, "North 40", "#1"), (1, "Creek", "#2"), (2, "Home", "#3")]
+    assert feats[1].attributes == {"Field_Name": "Creek", "farm_id": 8}
+    assert type(feats[1].attributes["farm_id"]) is int
+    assert all(f.crs == UTM and f.n_parts == 1 for f in feats)
+    # Source: shapely (equals is topological equality of the written and read polygons).
+    assert all(f.geometry.equals(g) for f, g in zip(feats, THREE, strict=True))
+    by_farm = boundary_features(path, name_attribute="FARM_ID")
+    assert [f.name for f in by_farm] == ["7", "8", "9"]
+    with pytest.raises(InputError, match=r"no attribute 'crop'.*Field_Name, farm_id"):
+        boundary_features(path, name_attribute="crop")
+
+
+def test_unnamed_features_get_their_position_and_skipped_rows_still_count(tmp_path):
+    parts = [LineString([(0, 0), (5, 5)]), box(0, 0, 10, 10), box(20, 0, 30, 10)]
+    path = _fields(tmp_path, names=["track", "", None], parts=parts, column="NAME")
+    feats = boundary_features(path)
+    assert [(f.index, f.name) for f in feats] == [(1, "feature-2"), (2, "feature-3")]
+    nameless = tmp_path / "plain.gpkg"
+    gpd.GeoDataFrame({"crop": ["maize", "soy"]}, geometry=THREE[:2], crs=UTM).to_file(nameless)
+    assert [f.name for f in boundary_features(nameless)] == ["feature-1", "feature-2"]
+
+
+def test_one_feature_chosen_by_name_attribute_value_index_or_position(tmp_path):
+    path = _fields(tmp_path, farm_id=[7, 8, 9])
+    cm = _no_warning()
+    try:
+        chosen = {
+            "name": read_boundary(path, feature="Creek")[0],
+            "name, other case": read_boundary(path, feature="creek")[0],
+            "attr=value": read_boundary(path, feature="farm_id=8")[0],
+            "ATTR = value": read_boundary(path, feature="FIELD_NAME = Creek")[0],
+            "0-based index": read_boundary(path, feature=1)[0],
+            "#N, 1-based": read_boundary(path, feature="#2")[0],
+        }
+    finally:
+        cm.__exit__(None, None, None)
+    for how, geom in chosen.items():
+        assert geom.equals(THREE[1]), how
+    assert read_boundary(path, feature=0)[0].equals(THREE[0])
+    assert read_boundary(path, feature="#3")[0].equals(THREE[2])
+    assert read_boundary(path, feature=np.int64(2))[0].equals(THREE[2])
+    sel = select_boundary(path, feature="Home")
+    assert not sel.merged and [f.name for f in sel.features] == ["Home"]
+    assert sel.note == "feature 'Home' (#3 of 3) of fields.gpkg, 1 polygon(s)"
+
+
+def test_unknown_or_ambiguous_feature_lists_the_names_and_how_to_choose(tmp_path):
+    path = _fields(tmp_path)
+    listed = r"North 40 \(#1\), Creek \(#2\), Home \(#3\); choose one with --field NAME"
+    with pytest.raises(InputError, match=r"fields\.gpkg: no feature 'Barn'; the file holds "
+                       r"3: " + listed):
+        read_boundary(path, feature="Barn")
+    with pytest.raises(InputError, match=r"no feature '3' \(for the 3-th feature by position, "
+                       r"use '#3'\)"):
+        read_boundary(path, feature="3")
+    for beyond in ("#4", "#0", 3, -1):
+        with pytest.raises(InputError, match="no feature"):
+            read_boundary(path, feature=beyond)
+    twice = _fields(tmp_path, names=["Creek", "Creek", "Home"], name="twice.gpkg")
+    with pytest.raises(InputError, match=r"2 features match 'Creek': Creek \(#1\), Creek \(#2\); "
+                       r"choose one by position with --field '#N'"):
+        read_boundary(twice, feature="Creek")
+    assert read_boundary(twice, feature="#2")[0].equals(THREE[1])
+
+
+def test_long_listings_stop_at_twenty_names(tmp_path):
+    parts = [box(20 * i, 0, 20 * i + 10, 10) for i in range(25)]
+    path = _fields(tmp_path, names=[f"P{i}" for i in range(25)], parts=parts)
+    with pytest.raises(InputError, match=r"P19 \(#20\) and 5 more;") as err:
+        read_boundary(path, feature="Barn")
+    assert "P20" not in str(err.value)
+
+
+def test_a_feature_named_like_a_number_is_chosen_by_name(tmp_path):
+    path = _fields(tmp_path, names=["3", "1", "2"], column="id")
+    assert read_boundary(path, feature="3")[0].equals(THREE[0])
+    assert read_boundary(path, feature="#3")[0].equals(THREE[2])
+
+
+@pytest.mark.parametrize("parts, relation", [
+    (THREE, "do not touch"),
+    ([box(0, 0, 100, 100), box(100, 0, 200, 100), box(600, 0, 800, 100)], "touch"),
+    ([box(0, 0, 100, 100), box(50, 0, 200, 100), box(600, 0, 800, 100)], "overlap"),
+])
+def test_merging_several_features_warns_with_names_and_whether_they_touch(tmp_path, parts,
+                                                                          relation):
+    # Source: shapely (DE-9IM predicates: boxes sharing an edge intersect with zero area).
+    path = _fields(tmp_path, parts=parts)
+    with pytest.warns(PmapWarning) as caught:
+        sel = select_boundary(path)
+    assert len(caught) == 1
+    assert str(caught[0].message) == (
+        f"fields.gpkg: 3 features merged into one field: North 40, Creek, Home; they "
+        f"{relation}; choose one with --field NAME (or '#N' for the N-th) or run each as "
+        "its own field with --each-field")
+    assert sel.merged and len(sel.features) == 3
+    assert sel.geometry.area == pytest.approx(shapely.union_all(parts).area)
+
+
+def test_one_feature_of_several_parts_is_not_a_merge(tmp_path, caplog):
+    from shapely.geometry import MultiPolygon
+
+    split = MultiPolygon([box(0, 0, 10, 10), box(20, 0, 30, 10)])
+    path = _fields(tmp_path, names=["Split"], parts=[split])
+    cm = _no_warning()
+    try:
+        with caplog.at_level("INFO", logger="pmap.io.boundary"):
+            sel = select_boundary(path)
+        single = select_boundary(_fields(tmp_path, names=["One"], parts=[SQUARE], name="1.gpkg"))
+    finally:
+        cm.__exit__(None, None, None)
+    assert not sel.merged and sel.n_parts == 2 and sel.features[0].n_parts == 2
+    assert sel.note == "feature 'Split' (#1 of 1) of fields.gpkg, 2 polygon(s)"
+    assert "2 polygon(s)" in caplog.text
+    assert not single.merged and single.n_parts == 1
+
+
+def test_feature_slugs_are_safe_and_distinct():
+    # common practice, no source: file names of letters, digits, '-', '.', '_' only.
+    names = ["North 40", "North/40", "north 40", "", "Feld Ünter", "North-40", "con", "a" * 70]
+    slugs = feature_slugs(names)
+    assert slugs == ["North-40", "North-40-2", "north-40-3", "field", "Feld-Unter",
+                     "North-40-4", "con-field", "a" * 60]
+    # Source: Microsoft, "Naming Files, Paths, and Namespaces" (CON, NUL, COM1 ... reserved).
+    assert feature_slugs(["NUL", "com1", "Lpt9.x"]) == ["NUL-field", "com1-field", "Lpt9-field.x"]
+    assert all(re.fullmatch(r"[A-Za-z0-9._-]+", s) for s in slugs)
+    assert len({s.casefold() for s in slugs}) == len(slugs)
+
+
+def test_split_writes_one_file_per_feature_in_the_file_crs(tmp_path):
+    path = _fields(tmp_path, names=["North 40", "North/40", "Home"], farm_id=[7, 8, 9])
+    written = split_boundary(path, tmp_path / "each")
+    assert [p.name for _, p in written] == ["North-40.geojson", "North-40-2.geojson",
+                                           "Home.geojson"]
+    for feat, file in written:
+        geom, crs = read_boundary(file)
+        assert crs == UTM and geom.equals(feat.geometry)
+        assert gpd.read_file(file)["farm_id"].tolist() == [feat.attributes["farm_id"]]
+    assert sorted(p.name for p in (tmp_path / "each").iterdir()) == sorted(
+        p.name for _, p in written)
+    with pytest.raises(OutputExistsError, match=r"North-40\.geojson exists"):
+        split_boundary(path, tmp_path / "each")
+
+
+def test_split_keeps_a_crs_without_epsg_code(tmp_path):
+    # Source: RFC 7946, section 4 (GeoJSON coordinates are WGS 84; GDAL writes other CRSs
+    # only as EPSG names), so a CRS without a code goes to a GeoPackage.
+    local = "+proj=tmerc +lat_0=0 +lon_0=-87.3 +k=1 +x_0=500000 +y_0=0 +ellps=GRS80 +units=m"
+    path = _fields(tmp_path, crs=local)
+    written = split_boundary(path, tmp_path / "each")
+    assert [p.suffix for _, p in written] == [".gpkg"] * 3
+    from pyproj import CRS
+
+    for feat, file in written:
+        geom, crs = read_boundary(file)
+        assert CRS.from_user_input(crs).equals(CRS.from_user_input(local))
+        assert geom.equals(feat.geometry)
 
 
 def test_invalid_bowtie_is_repaired(tmp_path):
