@@ -14,15 +14,24 @@ from numpy.typing import ArrayLike
 
 from pmap._checks import check_choice, check_number, require
 from pmap.errors import ConfigError
-from pmap.soil.conversions import SOIL_TEST_METHODS, bray1_from_mehlich3_icp, lb_acre_to_kg_ha
+from pmap.prescribe.interpretation import REGIONS, InterpretationTable, interpretation_table
+from pmap.soil.conversions import SOIL_TEST_METHODS, kg_ha_to_lb_acre, lb_acre_to_kg_ha
 
 __all__ = [
     "CROP_REMOVAL_LB_P2O5_PER_BU",
-    "CRITICAL_PPM_MEHLICH3",
-    "CRITICAL_PPM_BRAY1",
-    "MAINTENANCE_LIMIT_PPM_MEHLICH3",
     "resolve_rule",
+    "resolve_interpretation",
     "PRODUCT_P2O5_FRACTION",
+    "PRODUCT_GRADES",
+    "parse_grade",
+    "product_grade",
+    "product_label",
+    "product_rates",
+    "nitrogen_kg_ha",
+    "product_cost",
+    "single_rate",
+    "DISPLAY_UNITS",
+    "to_display_units",
     "RateRule",
     "crop_removal_lb_acre",
     "removal_lb_acre",
@@ -36,23 +45,13 @@ __all__ = [
 #: Crop, Forage & Turfgrass Management, 180090.
 CROP_REMOVAL_LB_P2O5_PER_BU: dict[str, float] = {"corn": 0.37, "soybean": 0.75, "wheat": 0.46}
 
-#: Mehlich-3 critical soil-test P (ppm) by crop.  Source: Tri-State 2020 (Bulletin 974).
-CRITICAL_PPM_MEHLICH3: dict[str, float] = {"corn": 20.0, "soybean": 20.0, "wheat": 30.0}
+#: Grades (% N, P2O5, K2O by mass) of common P fertilizers.  MAP 11-52-0 and DAP 18-46-0:
+#: Ohioline ANR-74; TSP 0-46-0: common practice, no source.
+PRODUCT_GRADES: dict[str, tuple[float, float, float]] = {
+    "MAP": (11.0, 52.0, 0.0), "DAP": (18.0, 46.0, 0.0), "TSP": (0.0, 46.0, 0.0)}
 
-#: Bray P1 critical soil-test P (ppm) by crop.  Source: Tri-State 1995 (E-2567), via Ohio
-#: State agronomy pages.
-CRITICAL_PPM_BRAY1: dict[str, float] = {"corn": 15.0, "soybean": 15.0}
-
-#: Mehlich-3 soil-test P (ppm) at or above which no P is suggested.  Source: Tri-State 2020
-#: (Bulletin 974), via Ohio State agronomy pages.
-MAINTENANCE_LIMIT_PPM_MEHLICH3: float = 50.0
-
-#: P2O5 mass fraction of common P fertilizers.  MAP 11-52-0 and DAP 18-46-0: Ohioline
-#: ANR-74; TSP 0-46-0: common practice, no source.
-PRODUCT_P2O5_FRACTION: dict[str, float] = {"MAP": 0.52, "DAP": 0.46, "TSP": 0.46}
-
-_TRI_STATE = "Tri-State 2020 (Bulletin 974)"
-
+#: P2O5 mass fraction of the products of :data:`PRODUCT_GRADES`.
+PRODUCT_P2O5_FRACTION: dict[str, float] = {k: g[1] / 100 for k, g in PRODUCT_GRADES.items()}
 
 @dataclass(frozen=True)
 class RateRule:
@@ -64,6 +63,16 @@ class RateRule:
             "unit": "",
             "doc": "crop of the removal table (corn, soybean, wheat)",
             "source": "Villamil, Nafziger & Behnke (2019)",
+        },
+    )
+    region: str = field(
+        default="tri-state",
+        metadata={
+            "unit": "",
+            "doc": "region whose interpretation table (classes, critical level, no-response "
+            "limit) applies: tri-state (Indiana, Michigan, Ohio) or iowa; see "
+            "docs/rates-and-zones.md",
+            "source": "Tri-State 2020 (Bulletin 974); Iowa State PM 1688",
         },
     )
     yield_goal: float = field(
@@ -95,18 +104,21 @@ class RateRule:
         default=None,
         metadata={
             "unit": "mg/kg",
-            "doc": "soil-test P below which build-up P is added; unset: Mehlich-3 corn/soybean "
-            "20, wheat 30; Bray-1 corn/soybean 15; other cases must set it",
-            "source": "Tri-State 2020 (Bulletin 974); Tri-State 1995 (E-2567) for Bray-1",
+            "doc": "soil-test P below which build-up P is added; unset: from the region's "
+            "interpretation table for the method and crop (tri-state Mehlich-3 ICP corn/soybean "
+            "20, wheat 30; Bray-1 15/25; iowa: the lower bound of the optimum class); a method "
+            "with no published table must set it",
+            "source": "Tri-State 2020 (Bulletin 974); Tri-State 1995 (E-2567); Iowa State PM 1688",
         },
     )
     maintenance_limit_ppm: float | None = field(
         default=None,
         metadata={
             "unit": "mg/kg",
-            "doc": "soil-test P at or above which no P is suggested; unset: Mehlich-3 50, "
-            "Bray-1 33.5 (the Mehlich-3 50 through the Bray-1 regression); Olsen must set it",
-            "source": _TRI_STATE,
+            "doc": "no-response limit: soil-test P at or above which no P is suggested; unset: "
+            "from the region's table (tri-state 50; iowa: the lower bound of the high class); "
+            "a method with no published table must set it",
+            "source": "Tri-State 2020 (Bulletin 974) via Ohio State agbmps pages; Iowa State PM 1688",
         },
     )
     buildup_lb_p2o5_per_acre_per_ppm: float = field(
@@ -129,8 +141,96 @@ class RateRule:
         default="MAP",
         metadata={
             "unit": "",
-            "doc": "fertilizer product (MAP, DAP, TSP)",
-            "source": "Ohioline ANR-74",
+            "doc": "fertilizer product: MAP (11-52-0), DAP (18-46-0), TSP (0-46-0), or user "
+            "(rates.product_grade and rates.product_name)",
+            "source": "Ohioline ANR-74 (MAP, DAP); TSP common practice, no source",
+        },
+    )
+    product_grade: str = field(
+        default="",
+        metadata={
+            "unit": "% N-P2O5-K2O",
+            "doc": "grade of a user product (rates.product = \"user\"), e.g. \"10-34-0\"",
+            "source": "common practice, no source",
+        },
+    )
+    product_name: str = field(
+        default="",
+        metadata={
+            "unit": "",
+            "doc": "name of a user product, shown in tables and files",
+            "source": "common practice, no source",
+        },
+    )
+    product_increment_kg_ha: float = field(
+        default=5.0,
+        metadata={
+            "unit": "kg product/ha",
+            "doc": "metering step of the applicator: product rates are rounded to it and the "
+            "P2O5 delivered is recomputed from the rounded product rate (0 = no rounding)",
+            "source": "common practice, no source",
+        },
+    )
+    product_price_per_t: float | None = field(
+        default=None,
+        metadata={
+            "unit": "currency/t product",
+            "doc": "price of the product; set, tables and totals show the cost",
+            "source": "common practice, no source",
+        },
+    )
+    currency: str = field(
+        default="",
+        metadata={"unit": "", "doc": "currency label of the price (e.g. USD, EUR)",
+                  "source": "common practice, no source"},
+    )
+    units: str = field(
+        default="metric",
+        metadata={
+            "unit": "",
+            "doc": "units of the rate tables and file attributes: metric (kg/ha) or us "
+            "(lb/acre added beside kg/ha); pmap computes in SI either way",
+            "source": "common practice, no source",
+        },
+    )
+    out_of_field_rate_kg_ha: float = field(
+        default=0.0,
+        metadata={
+            "unit": "kg product/ha",
+            "doc": "rate a controller applies outside the field and where pmap gives no rate "
+            "(cells far from every sample)",
+            "source": "common practice, no source",
+        },
+    )
+    deficiency_probability_threshold: float | None = field(
+        default=None,
+        metadata={
+            "unit": "probability",
+            "doc": "risk-aware rule (off when unset): the rule is applied to the soil-test P "
+            "that the cell falls below with this probability (the quantile of the kriging "
+            "distribution), so a cell counts as below critical exactly when its probability "
+            "of deficiency exceeds the threshold. Lower values apply P more readily",
+            "source": "common practice, no source",
+        },
+    )
+    max_distance_from_sample_m: float | None = field(
+        default=None,
+        metadata={
+            "unit": "m",
+            "doc": "cells farther than this from every sample get no rate (flagged \"not "
+            "sampled\"); unset = rates.max_distance_spacings x the median spacing of the "
+            "samples",
+            "source": "common practice, no source",
+        },
+    )
+    max_distance_spacings: float = field(
+        default=1.5,
+        metadata={
+            "unit": "sample spacings",
+            "doc": "default of rates.max_distance_from_sample_m in multiples of the median "
+            "nearest-neighbour spacing (on a regular grid every point lies within 0.71 "
+            "spacings of a sample)",
+            "source": "common practice, no source",
         },
     )
     increment_kg_ha: float = field(
@@ -183,7 +283,28 @@ class RateRule:
         require(not isinstance(years, bool) and int(years) == years, "rates.years_to_build",
                 "be a whole number", years)
         check_number("rates.years_to_build", years, ge=1)
-        check_choice("rates.product", self.product, PRODUCT_P2O5_FRACTION)
+        check_choice("rates.region", self.region, REGIONS)
+        check_choice("rates.product", self.product, (*PRODUCT_GRADES, "user"))
+        if self.product == "user":
+            parse_grade(self.product_grade, "rates.product_grade")
+            require(bool(self.product_name.strip()), "rates.product_name",
+                    "name the user product", self.product_name)
+        check_number("rates.product_increment_kg_ha", self.product_increment_kg_ha, ge=0,
+                     finite=True)
+        if self.product_price_per_t is not None:
+            check_number("rates.product_price_per_t", self.product_price_per_t, ge=0,
+                         finite=True)
+        check_choice("rates.units", self.units, ("metric", "us"))
+        check_number("rates.out_of_field_rate_kg_ha", self.out_of_field_rate_kg_ha, ge=0,
+                     finite=True)
+        if self.deficiency_probability_threshold is not None:
+            check_number("rates.deficiency_probability_threshold",
+                         self.deficiency_probability_threshold, gt=0, lt=1)
+        if self.max_distance_from_sample_m is not None:
+            check_number("rates.max_distance_from_sample_m", self.max_distance_from_sample_m,
+                         gt=0, finite=True)
+        check_number("rates.max_distance_spacings", self.max_distance_spacings, gt=0,
+                     finite=True)
         check_number("rates.increment_kg_ha", self.increment_kg_ha, ge=0)
         check_number("rates.min_rate_kg_ha", self.min_rate_kg_ha, ge=0)
         require(self.max_rate_kg_ha > self.min_rate_kg_ha, "rates.max_rate_kg_ha",
@@ -202,51 +323,38 @@ class RateRule:
         return CROP_REMOVAL_LB_P2O5_PER_BU[self.crop]
 
 
-def _default_critical(method: str, crop: str) -> float | None:
-    if method in ("mehlich3_icp", "mehlich3_colorimetric"):
-        return CRITICAL_PPM_MEHLICH3.get(crop)
-    if method == "bray1":
-        return CRITICAL_PPM_BRAY1.get(crop)
-    return None
+def resolve_interpretation(
+    rule: RateRule, method: str, breaks: tuple[float, ...] | None = None,
+    labels: tuple[str, ...] | None = None,
+) -> InterpretationTable:
+    """The one interpretation table that gives both the zone classes and the rule's levels.
 
-
-def _default_limit(method: str) -> float | None:
-    if method in ("mehlich3_icp", "mehlich3_colorimetric"):
-        return MAINTENANCE_LIMIT_PPM_MEHLICH3
-    if method == "bray1":
-        return round(float(bray1_from_mehlich3_icp(MAINTENANCE_LIMIT_PPM_MEHLICH3)), 1)
-    return None
-
-
-def resolve_rule(rule: RateRule, method: str) -> RateRule:
-    """The rule with its method, critical level and limit filled in for soil tests by ``method``.
-
-    Unset values follow the samples' method and the crop (see the ``[rates]`` keys).
+    ``method`` is the samples' soil-test method; ``rule.soil_test_method``, when set, takes
+    its place (the soil test is then converted to it).  ``breaks`` and ``labels`` are the
+    user's ``zones.breaks`` / ``zones.labels`` (None = from the table).
 
     Raises
     ------
     ConfigError
-        No published default exists for this method and crop: the message names the key.
+        No published table for the method, region and crop and values missing (the message
+        names the keys), or the critical level or limit is not a class break.
     """
     method = rule.soil_test_method or method
     check_choice("soil-test method", method, SOIL_TEST_METHODS)
-    critical = rule.critical_ppm if rule.critical_ppm is not None else _default_critical(method, rule.crop)
-    if critical is None:
-        raise ConfigError(
-            f"rates.critical_ppm has no default for {method} soil tests and crop {rule.crop!r}: "
-            "set it (mg/kg) from your region's calibration"
-        )
-    limit = (rule.maintenance_limit_ppm if rule.maintenance_limit_ppm is not None
-             else _default_limit(method))
-    if limit is None:
-        raise ConfigError(
-            f"rates.maintenance_limit_ppm has no default for {method} soil tests: set it (mg/kg) "
-            "from your region's calibration"
-        )
-    require(limit > critical, "rates.maintenance_limit_ppm",
-            f"exceed rates.critical_ppm ({critical})", limit)
-    return dataclasses.replace(rule, soil_test_method=method, critical_ppm=float(critical),
-                               maintenance_limit_ppm=float(limit))
+    return interpretation_table(method, rule.region, rule.crop, breaks=breaks, labels=labels,
+                                critical_ppm=rule.critical_ppm,
+                                limit_ppm=rule.maintenance_limit_ppm)
+
+
+def resolve_rule(rule: RateRule, method: str) -> RateRule:
+    """The rule with its method, critical level and limit filled in from the region's table.
+
+    See :func:`resolve_interpretation`; raises ConfigError in the same cases.
+    """
+    table = resolve_interpretation(rule, method)
+    return dataclasses.replace(rule, soil_test_method=table.method,
+                               critical_ppm=table.critical_ppm,
+                               maintenance_limit_ppm=table.limit_ppm)
 
 
 def _resolved(rule: RateRule) -> RateRule:
@@ -355,3 +463,109 @@ def product_kg_ha(p2o5_kg_ha: ArrayLike, product: str | float = "MAP") -> np.nda
         if not 0 < fraction <= 1:
             raise ConfigError(f"product P2O5 fraction must lie in (0, 1], got {fraction}")
     return np.asarray(p2o5_kg_ha, dtype=float) / fraction
+
+
+def parse_grade(grade: str, key: str = "grade") -> tuple[float, float, float]:
+    """``"N-P2O5-K2O"`` percentages of a fertilizer grade string such as ``"10-34-0"``.
+
+    Raises
+    ------
+    ConfigError
+        Not three numbers separated by hyphens, a share outside 0-100, their sum over
+        100, or no P2O5.
+    """
+    parts = str(grade).strip().split("-")
+    try:
+        values = tuple(float(p) for p in parts)
+    except ValueError:
+        values = ()
+    if len(values) != 3 or not all(0 <= v <= 100 for v in values) or sum(values) > 100:
+        raise ConfigError(f"{key} must be an N-P2O5-K2O grade such as \"10-34-0\" "
+                          f"(three percentages, sum at most 100), got {grade!r}")
+    if values[1] <= 0:
+        raise ConfigError(f"{key} {grade!r} holds no P2O5: choose a phosphorus product")
+    return values  # type: ignore[return-value]
+
+
+def product_grade(rule: RateRule) -> tuple[float, float, float]:
+    """The rule's product grade (% N, P2O5, K2O)."""
+    if rule.product == "user":
+        return parse_grade(rule.product_grade, "rates.product_grade")
+    return PRODUCT_GRADES[rule.product]
+
+
+def product_label(rule: RateRule) -> str:
+    """Name of the rule's product as tables and files show it, e.g. ``"MAP 11-52-0"``."""
+    n, p, k = product_grade(rule)
+    name = rule.product_name.strip() if rule.product == "user" else rule.product
+    return f"{name} {n:g}-{p:g}-{k:g}"
+
+
+def product_rates(p2o5_kg_ha: ArrayLike, rule: RateRule) -> tuple[np.ndarray, np.ndarray,
+                                                                   np.ndarray]:
+    """What the applicator meters for P2O5 rates (kg P2O5/ha): product, P2O5 and N (kg/ha).
+
+    Order: the P2O5 rate is rounded first (:func:`p2o5_rate_kg_ha`), then the product rate
+    ``p2o5 / P2O5 fraction`` is rounded half-up to ``rule.product_increment_kg_ha`` when set
+    (a step that would deliver more P2O5 than ``rule.max_rate_kg_ha`` is taken back one
+    increment), and the P2O5 and N delivered are recomputed from the rounded product rate,
+    the one the machine meters, so every table agrees with what is applied.
+
+    Returns
+    -------
+    product, p2o5, nitrogen : numpy.ndarray
+        kg product/ha, kg P2O5/ha and kg N/ha; NaN where ``p2o5_kg_ha`` is NaN.
+    """
+    n_pct, p_pct, _k = product_grade(rule)
+    product = np.asarray(p2o5_kg_ha, dtype=float) / (p_pct / 100)
+    step = rule.product_increment_kg_ha
+    if step > 0:
+        product = np.floor(product / step + 0.5) * step
+        over = product * p_pct / 100 > rule.max_rate_kg_ha * (1 + 1e-12)
+        product = np.where(over, product - step, product)
+    return product, product * p_pct / 100, product * n_pct / 100
+
+
+def nitrogen_kg_ha(product_kg_ha: ArrayLike, product: str | RateRule = "MAP") -> np.ndarray:
+    """N supplied (kg N/ha) by a product rate (kg product/ha), e.g. 11 % of MAP.
+
+    ``product`` is a key of :data:`PRODUCT_GRADES` or a rule (whose product may be "user").
+    """
+    if isinstance(product, RateRule):
+        n_pct = product_grade(product)[0]
+    else:
+        check_choice("product", product, tuple(PRODUCT_GRADES))
+        n_pct = PRODUCT_GRADES[product][0]
+    return np.asarray(product_kg_ha, dtype=float) * n_pct / 100
+
+
+def product_cost(product_total_kg: float, rule: RateRule) -> float | None:
+    """Cost of ``product_total_kg`` at ``rule.product_price_per_t``; None without a price."""
+    if rule.product_price_per_t is None:
+        return None
+    return float(product_total_kg) / 1000.0 * rule.product_price_per_t
+
+
+def single_rate(rates_kg_ha: ArrayLike) -> float | None:
+    """The one rate when every finite rate is equal (a flat "variable-rate" map), else None."""
+    values = np.asarray(rates_kg_ha, dtype=float)
+    values = values[np.isfinite(values)]
+    if values.size == 0 or values.min() != values.max():
+        return None
+    return float(values[0])
+
+
+#: Unit label of a rate (per hectare or per acre) for each ``rates.units`` choice.
+DISPLAY_UNITS: dict[str, str] = {"metric": "kg/ha", "us": "lb/acre"}
+
+
+def to_display_units(kg_ha: ArrayLike, units: str) -> np.ndarray:
+    """A rate (kg/ha; of P2O5, product or N) in the ``rates.units`` system.
+
+    ``"metric"`` returns kg/ha unchanged; ``"us"`` returns lb/acre (1 lb/acre = 1.12085 kg/ha,
+    from the definitions of the pound and the acre).  pmap computes in SI; this is only for
+    tables and file attributes.
+    """
+    check_choice("rates.units", units, tuple(DISPLAY_UNITS))
+    values = np.asarray(kg_ha, dtype=float)
+    return values.copy() if units == "metric" else kg_ha_to_lb_acre(values)

@@ -132,13 +132,14 @@ def test_resolve_rule_fills_published_defaults_by_method_and_crop():
     corn = resolve_rule(RateRule(), "mehlich3_icp")
     assert (corn.critical_ppm, corn.maintenance_limit_ppm) == (20.0, 50.0)
     assert resolve_rule(RateRule(crop="wheat"), "mehlich3_icp").critical_ppm == 30.0
-    # Source: Tri-State 1995 (E-2567): Bray P1 critical 15 ppm corn/soybean; the limit is the
-    # Mehlich-3 50 ppm through the Ohio State Bray-1 regression, -8.08 + 0.832 x 50 = 33.5.
+    # Source: Ohio State agbmps.osu.edu "Soil test P levels less than 50 PPM" (Tri-State 1995,
+    # Vitosh et al.): Bray P1 critical 15 ppm corn/soybean, 25 with wheat; no additional P
+    # above 50 ppm.
     bray = resolve_rule(RateRule(), "bray1")
-    assert (bray.critical_ppm, bray.maintenance_limit_ppm) == (15.0, 33.5)
-    with pytest.raises(ConfigError, match="rates.critical_ppm has no default for olsen"):
+    assert (bray.critical_ppm, bray.maintenance_limit_ppm) == (15.0, 50.0)
+    with pytest.raises(ConfigError, match="rates.critical_ppm and rates.maintenance_limit_ppm"):
         resolve_rule(RateRule(), "olsen")
-    with pytest.raises(ConfigError, match="rates.maintenance_limit_ppm has no default for olsen"):
+    with pytest.raises(ConfigError, match="set rates.maintenance_limit_ppm"):
         resolve_rule(RateRule(critical_ppm=10.0), "olsen")
     explicit = resolve_rule(RateRule(soil_test_method="bray1", critical_ppm=18.0), "mehlich3_icp")
     assert (explicit.soil_test_method, explicit.critical_ppm) == ("bray1", 18.0)
