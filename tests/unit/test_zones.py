@@ -5,17 +5,20 @@ import pytest
 from scipy import ndimage
 
 from pmap.errors import ConfigError
+from pmap.prescribe.interpretation import interpretation_table
 from pmap.prescribe.zones import (
-    CLASS_LABELS,
-    DEFAULT_CLASS_BREAKS,
     ZoneParams,
-    class_breaks_for,
     classify,
     clean_speckles,
+    enforce_min_width,
+    label_patches,
     make_zones,
     min_cells_for_area,
     zone_statistics,
 )
+
+IOWA_ICP = interpretation_table("mehlich3_icp", "iowa", "corn")
+CLASS_LABELS = IOWA_ICP.labels
 
 FOUR = ndimage.generate_binary_structure(2, 1)
 
@@ -35,23 +38,9 @@ def _small_components_with_neighbours(classes, mask, min_cells):
     return count
 
 
-def test_default_breaks_and_labels():
-    # Source: Iowa State PM 1688 via ICM News Oct 2016: optimum M3-ICP 26-35, Bray-1 and
-    # M3 colorimetric 16-20, Olsen 10-13 ppm (the optimum class is the 3rd)
-    assert DEFAULT_CLASS_BREAKS["mehlich3_icp"][1:3] == (26, 36)
-    assert DEFAULT_CLASS_BREAKS["bray1"][1:3] == (16, 21)
-    assert DEFAULT_CLASS_BREAKS["mehlich3_colorimetric"][1:3] == (16, 21)
-    assert DEFAULT_CLASS_BREAKS["olsen"][1:3] == (10, 14)
-    # from memory, unverified: the other classes
-    assert DEFAULT_CLASS_BREAKS["mehlich3_icp"] == (16, 26, 36, 46)
-    assert CLASS_LABELS[2] == "optimum" and len(CLASS_LABELS) == 5
-    assert class_breaks_for(ZoneParams(), "olsen") == (6, 10, 14, 21)
-    assert class_breaks_for(ZoneParams(breaks=(1, 2), labels=("a", "b", "c")), "olsen") == (1, 2)
-
-
 def test_classify_edges_and_nan():
     values = np.array([[0.0, 15.99, 16.0, 25.9], [26.0, 35.5, 46.0, np.nan]])
-    got = classify(values, DEFAULT_CLASS_BREAKS["mehlich3_icp"])
+    got = classify(values, IOWA_ICP.breaks)
     np.testing.assert_array_equal(got, [[1, 1, 2, 2], [3, 3, 5, 0]])
     assert got.dtype == np.uint8
     with pytest.raises(ConfigError):
@@ -133,7 +122,7 @@ def test_make_zones_and_statistics():
     stp[4, 7] = 50.0  # speckle in the optimum half
     stp[0, 0] = np.nan
     mask = np.ones((10, 10), bool)
-    zones = make_zones(stp, mask, cell_area_ha=0.01)
+    zones = make_zones(stp, mask, 0.01, IOWA_ICP.breaks, 0.25)
     assert zones[4, 7] == 3 and zones[0, 0] == 0
     layers = {"stp": stp, "rate": np.where(zones == 1, 80.0, 0.0)}
     stats = zone_statistics(zones, layers, 0.01, labels=CLASS_LABELS)
@@ -147,10 +136,52 @@ def test_make_zones_and_statistics():
 
 def test_zone_params_validation():
     with pytest.raises(ConfigError, match="zones.labels"):
-        ZoneParams(breaks=(10, 20))
+        ZoneParams(breaks=(10, 20), labels=("a", "b"))
     with pytest.raises(ConfigError, match="zones.breaks"):
         ZoneParams(breaks=(20, 10), labels=("a", "b", "c"))
     with pytest.raises(ConfigError, match="zones.min_mapping_unit_ha"):
         ZoneParams(min_mapping_unit_ha=-1)
-    with pytest.raises(ConfigError):
-        class_breaks_for(ZoneParams(), "morgan")
+    with pytest.raises(ConfigError, match="zones.min_width_m"):
+        ZoneParams(min_width_m=-5)
+
+
+def _old_components(classes):
+    """The labelling zones.py used before it was merged into label_patches (reference)."""
+    labels = np.zeros(classes.shape, dtype=np.int64)
+    owner = [0]
+    for value in np.unique(classes[classes > 0]):
+        lab, n = ndimage.label(classes == value, structure=FOUR)
+        labels[lab > 0] = lab[lab > 0] + (len(owner) - 1)
+        owner.extend([int(value)] * n)
+    return labels, np.asarray(owner)
+
+
+def test_one_labelling_for_components_and_patches():
+    # Source: scipy.ndimage.label with 4-connectivity, per class (the reference above).
+    from pmap.prescribe.patches import _components
+
+    rng = np.random.default_rng(5)
+    for _ in range(5):
+        classes = rng.integers(0, 4, (30, 40)).astype(np.uint8)
+        ref_labels, ref_owner = _old_components(classes)
+        labels, owner = _components(classes)
+        np.testing.assert_array_equal(labels, ref_labels)
+        np.testing.assert_array_equal(owner, ref_owner)
+        lab2, patch_class = label_patches(classes)
+        np.testing.assert_array_equal(lab2, ref_labels)
+        np.testing.assert_array_equal(patch_class, ref_owner[1:])
+
+
+def test_min_width_removes_a_corridor_narrower_than_the_boom():
+    # common practice, no source: a 1-cell-wide strip of class 2 through class 1 cannot be
+    # followed by a 3-cell boom; it goes to the class around it.  A 4-cell-wide band stays.
+    classes = np.ones((20, 30), np.uint8)
+    classes[:, 10] = 2           # corridor 1 cell wide
+    classes[:, 20:24] = 3        # band 4 cells wide
+    out = enforce_min_width(classes, np.ones_like(classes, bool), 3)
+    assert (out[:, 10] == 1).all()
+    assert (out[:, 20:24] == 3).all()
+    assert enforce_min_width(classes, np.ones_like(classes, bool), 1).tolist() == classes.tolist()
+    # a class with no part wide enough anywhere still gives way
+    out5 = enforce_min_width(classes, np.ones_like(classes, bool), 5)
+    assert not (out5 == 3).any() and not (out5 == 2).any()
