@@ -19,10 +19,12 @@ import numpy as np
 from affine import Affine
 
 from pmap._version import __version__
+from pmap.errors import ConfigError, InputError
 from pmap.grid import NODATA, GridSpec
 from pmap.io.crs import normalise_crs
 
-__all__ = ["CLASS_NODATA", "class_colours", "write_cog", "RasterInfo", "read_raster", "pmap_version"]
+__all__ = ["CLASS_NODATA", "class_colours", "write_cog", "RasterInfo", "read_raster", "pmap_version",
+           "read_onto_grid"]
 
 #: Value written for cells outside the field in class (uint8) rasters.
 CLASS_NODATA: int = 0
@@ -200,3 +202,81 @@ def read_raster(path: str | Path) -> tuple[np.ndarray, RasterInfo, dict[str, str
         )
         tags = src.tags()
     return data, info, tags
+
+
+_RESAMPLING = ("nearest", "bilinear", "cubic", "cubic_spline", "lanczos", "average", "mode")
+
+
+def read_onto_grid(
+    path: str | Path,
+    grid: GridSpec,
+    *,
+    resampling: str = "bilinear",
+    min_coverage: float = 1.0,
+) -> np.ndarray:
+    """Band 1 of a user raster (e.g. elevation) resampled onto the run's grid.
+
+    The raster is reprojected from its own CRS to ``grid.crs`` and ``grid.transform``
+    (``rasterio.warp.reproject``); its nodata cells and cells beyond its extent are NaN.
+
+    Parameters
+    ----------
+    path : str or Path
+        A raster GDAL reads (GeoTIFF); it must carry a CRS.
+    grid : GridSpec
+        The run's grid and field mask.
+    resampling : str
+        nearest, bilinear (default, for continuous layers), cubic, cubic_spline, lanczos,
+        average or mode.
+    min_coverage : float
+        Least fraction (0-1) of the field's cells that must get a value; default every cell.
+
+    Returns
+    -------
+    numpy.ndarray of float64, shape grid.shape
+        Values in the raster's own unit (cells outside the field included); NaN where the
+        raster has no value.
+
+    Raises
+    ------
+    pmap.errors.InputError
+        The file cannot be read, has no CRS, or covers less than ``min_coverage`` of the
+        field (the message says how much it covers).
+    """
+    import rasterio
+    from rasterio.enums import Resampling
+    from rasterio.errors import RasterioError
+    from rasterio.warp import reproject, transform_bounds
+
+    if resampling not in _RESAMPLING:
+        raise ConfigError(f"resampling must be one of {', '.join(_RESAMPLING)}, got {resampling!r}")
+    if not 0.0 <= min_coverage <= 1.0:
+        raise ValueError(f"min_coverage must lie in [0, 1], got {min_coverage}")
+    path = Path(path)
+    dst_crs = rasterio.crs.CRS.from_user_input(normalise_crs(grid.crs))
+    out = np.full(grid.shape, np.nan, dtype=np.float64)
+    try:
+        with rasterio.open(path) as src:
+            if src.crs is None:
+                raise InputError(
+                    f"{path}: the raster has no CRS; assign the one its coordinates are in "
+                    f"(e.g. gdal_edit.py -a_srs EPSG:<code> {path.name}) and run again")
+            reproject(
+                source=rasterio.band(src, 1), destination=out, src_nodata=src.nodata,
+                dst_transform=grid.transform, dst_crs=dst_crs, dst_nodata=np.nan,
+                resampling=Resampling[resampling])
+            src_bounds = transform_bounds(src.crs, dst_crs, *src.bounds)
+    except RasterioError as exc:
+        raise InputError(f"{path}: cannot read the raster ({exc}); give a GeoTIFF") from exc
+    inside = np.asarray(grid.mask, dtype=bool)
+    n_inside = int(inside.sum())
+    n_covered = int(np.isfinite(out[inside]).sum())
+    if n_inside and n_covered < min_coverage * n_inside:
+        share = n_covered / n_inside
+        extent = ", ".join(f"{b:.1f}" for b in src_bounds)
+        field = ", ".join(f"{b:.1f}" for b in grid.bounds)
+        raise InputError(
+            f"{path}: the raster covers {share:.1%} of the field ({n_covered} of {n_inside} "
+            f"cells with a value; its extent in {grid.crs} is ({extent}), the field's grid "
+            f"({field})); give a raster that covers the whole field")
+    return out
