@@ -14,9 +14,11 @@ import shapely
 from pmap.grid import GridSpec
 from pmap.io.vectors import (
     SHAPEFILE_FIELDS,
+    US_FIELDS,
     ZONE_FIELDS,
     patch_labels,
     shapefile_parts,
+    write_geojson,
     write_geojson_wgs84,
     write_geopackage,
     write_shapefile,
@@ -76,7 +78,7 @@ def test_geopackage_layer_fields_and_totals(tmp_path):
     assert back["zone_id"].tolist() == [1, 2, 3, 4]
     np.testing.assert_allclose(back["area_ha"].sum(), grid.n_inside * grid.cell_area_ha)
     np.testing.assert_allclose(back["product_total_kg"], back["product_kg_ha"] * back["area_ha"])
-    assert back["mean_available_p_mg_kg"].isna().all()
+    assert back["mean_deficiency_probability"].isna().all()
     assert not list(tmp_path.glob(".*"))
 
 
@@ -100,7 +102,7 @@ def test_shapefile_short_names_and_geojson_wgs84(tmp_path):
     gdf = zone_frame(zone_polygons(zones, grid), None, UTM)
     shp = write_shapefile(tmp_path / "rate_zones.shp", gdf)
     back = gpd.read_file(shp)
-    assert set(SHAPEFILE_FIELDS.values()) <= set(back.columns)
+    assert {SHAPEFILE_FIELDS[k] for k in ZONE_FIELDS} <= set(back.columns)
     assert all(len(c) <= 10 for c in back.columns)
     assert shp.with_suffix(".prj").exists()
     gj = write_geojson_wgs84(tmp_path / "rate_zones.geojson", gdf)
@@ -164,3 +166,98 @@ def test_same_frame_gives_the_same_bytes(tmp_path):
     assert files_a == files_b and len(files_a) == 7  # gpkg, geojson, shp/shx/dbf/prj/cpg
     for rel in files_a:
         assert (tmp_path / "a" / rel).read_bytes() == (tmp_path / "b" / rel).read_bytes(), rel
+
+
+def _records(patches):
+    """Per-polygon records as the prescription gives them (SI units), plus a foreign key."""
+    return [{"zone_id": k + 1, "class_id": c, "class_label": {1: "low", 2: "medium", 3: "high"}[c],
+             "role": "build-up", "basis": "measured soil test", "area_ha": 99.0,
+             "mean_stp_mg_kg": 10.0 + c, "mean_rule_stp_mg_kg": 11.0 + c,
+             "mean_deficiency_probability": 0.9 / c, "p2o5_kg_ha": 100.0, "product": "MAP 11-52-0",
+             "product_kg_ha": 100.0 / 0.52, "n_kg_ha": 100.0 / 0.52 * 0.11, "n_cells": 7}
+            for k, (_, c) in enumerate(patches)]
+
+
+def test_records_with_field_farm_date_and_us_units():
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    gdf = zone_frame(patches, _records(patches), UTM, field="North 40", farm="Hillside",
+                     date="2026-04-02", units="us", out_of_field_kg_ha=0.0)
+    assert list(gdf.columns[:-1]) == list(ZONE_FIELDS) + list(US_FIELDS)
+    assert "mean_rule_stp_mg_kg" not in gdf.columns and "n_cells" not in gdf.columns
+    assert set(gdf["field"]) == {"North 40"} and set(gdf["farm"]) == {"Hillside"}
+    assert set(gdf["date"]) == {"2026-04-02"} and set(gdf["basis"]) == {"measured soil test"}
+    assert (gdf["out_rate_kg_ha"] == 0.0).all() and (gdf["out_rate_lb_acre"] == 0.0).all()
+    # area from the geometry, not the record's 99 ha
+    np.testing.assert_allclose(gdf["area_ha"], gdf.area / 10_000.0)
+    # Source: International Yard and Pound Agreement (1959): yard = 0.9144 m and
+    # pound = 0.45359237 kg exactly; an acre is 4,840 square yards (about 2.4710538 acre/ha,
+    # 100 kg/ha = 89.2179 lb/acre).
+    acre_m2 = 4840 * 0.9144**2
+    np.testing.assert_allclose(gdf["area_acre"], gdf.area / acre_m2, rtol=1e-12)
+    np.testing.assert_allclose(gdf["area_acre"] / gdf["area_ha"], 2.4710538, rtol=1e-7)
+    np.testing.assert_allclose(gdf["p2o5_lb_acre"], 100.0 * acre_m2 / 1e4 / 0.45359237)
+    np.testing.assert_allclose(gdf["p2o5_lb_acre"], 89.2179, rtol=1e-5)
+    np.testing.assert_allclose(gdf["product_total_lb"], gdf["product_total_kg"] / 0.45359237)
+    metric = zone_frame(patches, _records(patches), UTM)
+    assert not set(US_FIELDS) & set(metric.columns)
+    assert metric["field"].isna().all() and metric["date"].isna().all()
+
+
+def test_record_order_and_values_are_checked():
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    rows = _records(patches)
+    with pytest.raises(ValueError, match="polygon order"):
+        zone_frame(patches, rows[::-1], UTM)
+    renumbered = zone_frame(patches, [dict(r, zone_id=10 + k) for k, r in enumerate(rows)], UTM,
+                            zone_ids=[10, 11, 12, 13])
+    assert renumbered["zone_id"].tolist() == [10, 11, 12, 13]
+    with pytest.raises(ValueError, match="ISO date"):
+        zone_frame(patches, rows, UTM, date="02/04/2026")
+    with pytest.raises(ValueError, match="0-1"):
+        zone_frame(patches, [dict(r, mean_deficiency_probability=45.0) for r in rows], UTM)
+    with pytest.raises(ValueError, match="units"):
+        zone_frame(patches, rows, UTM, units="imperial")
+
+
+def test_shapefile_names_are_short_unique_and_cover_every_field():
+    # Source: dBASE III field descriptor, field name at most 10 characters (11 bytes, NUL-ended)
+    assert set(SHAPEFILE_FIELDS) == set(ZONE_FIELDS) | set(US_FIELDS)
+    names = list(SHAPEFILE_FIELDS.values())
+    assert all(len(n) <= 10 and n.isascii() for n in names) and len(set(names)) == len(names)
+
+
+def test_vector_crs_working_or_wgs84(tmp_path):
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    gdf = zone_frame(patches, _records(patches), UTM, field="North 40", units="us")
+    shp = write_shapefile(tmp_path / "ll" / "z.shp", gdf, crs="EPSG:4326")
+    back = gpd.read_file(shp)
+    assert back.crs.to_epsg() == 4326 and abs(back.total_bounds[0] + 87.0) < 3  # UTM 16N
+    # Source: shapely/pyproj invariant - reprojecting back preserves area within 1e-6
+    np.testing.assert_allclose(back.to_crs(UTM).area, gdf.area, rtol=1e-6)
+    assert back["FIELD"].tolist() == ["North 40"] * 4 and "P2O5_LBAC" in back.columns
+    kept = gpd.read_file(write_shapefile(tmp_path / "utm" / "z.shp", gdf, crs="working"))
+    assert kept.crs.to_epsg() == 32616
+    gj = gpd.read_file(write_geojson(tmp_path / "z.geojson", gdf))
+    assert gj.crs.to_epsg() == 4326
+    gj_utm = gpd.read_file(write_geojson(tmp_path / "z_utm.geojson", gdf, crs="working"))
+    assert gj_utm.crs.to_epsg() == 32616
+    gpkg = gpd.read_file(write_geopackage(tmp_path / "z.gpkg", gdf, crs="EPSG:4326"))
+    assert gpkg.crs.to_epsg() == 4326
+
+
+def test_out_of_field_rate_is_a_column_and_the_layer_description(tmp_path):
+    grid, zones = _zones()
+    patches = zone_polygons(zones, grid)
+    gdf = zone_frame(patches, _records(patches), UTM, out_of_field_kg_ha=12.5)
+    path = write_geopackage(tmp_path / "z.gpkg", gdf)
+    with sqlite3.connect(path) as con:
+        (text,) = con.execute("SELECT description FROM gpkg_contents").fetchone()
+    # Source: OGC GeoPackage 1.3 (OGC 12-128r18), gpkg_contents.description column
+    assert "12.5 kg/ha" in text and "basis" in text
+    back = gpd.read_file(path)
+    assert (back["out_rate_kg_ha"] == 12.5).all()
+    with pytest.raises(ValueError, match="out_of_field"):
+        zone_frame(patches, None, UTM, out_of_field_kg_ha=-1.0)
