@@ -51,6 +51,8 @@ def _report(result, out: Path) -> None:
         f"{totals['product']} in total"
     )
     click.echo(f"  rates driven by: {result.stp_source['description']}")
+    if result.prescription.get("single_rate_notice"):
+        click.echo(f"  {result.prescription['single_rate_notice']}")
     for name, interp in result.interpolations.items():
         cv = interp.cv
         click.echo(
@@ -108,21 +110,48 @@ def demo(out: Path, overwrite: bool) -> None:
               help="Field configuration TOML (see docs/configuration.md).")
 @click.option("--crs", help="CRS of projected x/y sample columns, e.g. EPSG:32616 (sets grid.crs).")
 @click.option("--cell-size", type=float, help="Output cell size in metres (sets grid.cell_size_m).")
+@click.option("--field", "feature",
+              help="Use one feature of a boundary file holding several fields: its name, "
+              "ATTR=VALUE, or '#N' for the N-th (sets field.boundary_feature).")
+@click.option("--each-field", is_flag=True,
+              help="Run every feature of the boundary file as its own field, into OUT/<name>/.")
+@click.option("--vector-crs",
+              help="CRS of the GeoPackage and Shapefile, e.g. EPSG:4326 for in-cab displays "
+              "(sets output.vector_crs; default the run's CRS).")
+@click.option("--units", type=click.Choice(["metric", "us"]),
+              help="Units of the rate tables and attributes (sets rates.units).")
 @click.option("--overwrite", is_flag=True, help="Replace OUT if it exists and is not empty.")
 def run(samples: Path, boundary: Path, out: Path, config_path: Path | None, crs: str | None,
-        cell_size: float | None, overwrite: bool) -> None:
+        cell_size: float | None, feature: str | None, each_field: bool,
+        vector_crs: str | None, units: str | None, overwrite: bool) -> None:
     """Map one field: SAMPLES (CSV, GeoJSON, GeoPackage or Shapefile) inside --boundary."""
     from pmap.config import load_config
-    from pmap.pipeline import run_field
+    from pmap.pipeline import run_each_feature, run_field
 
     config = _run_safely(load_config, config_path)
-    changes = {}
-    if crs:
-        changes["crs"] = crs
-    if cell_size is not None:
-        changes["cell_size_m"] = cell_size
-    if changes:
-        config = _run_safely(config.replace, "grid", **changes)
+    for section, changes in (("grid", {"crs": crs, "cell_size_m": cell_size}),
+                             ("field", {"boundary_feature": feature}),
+                             ("output", {"vector_crs": vector_crs}),
+                             ("rates", {"units": units})):
+        changes = {k: v for k, v in changes.items() if v is not None}
+        if changes:
+            config = _run_safely(config.replace, section, **changes)
+    if each_field:
+        if feature:
+            raise click.UsageError("--field and --each-field exclude each other")
+        results = _run_safely(run_each_feature, samples, boundary, out, config,
+                              overwrite=overwrite, config_path=config_path)
+        click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
+        failed = 0
+        for name, out_dir, result in results:
+            if isinstance(result, PmapError):
+                failed += 1
+                click.echo(f"  {name}: FAILED: {' '.join(str(result).split())}", err=True)
+            else:
+                click.echo(f"  {name}: {result.totals['area_ha']:.2f} ha, "
+                           f"{result.totals['p2o5_total_kg']:.0f} kg P2O5 -> {out_dir}")
+        click.echo(f"{len(results) - failed} of {len(results)} fields written under {out}")
+        sys.exit(3 if failed else 0)
     result = _run_safely(run_field, samples, boundary, out, config, overwrite=overwrite,
                          config_path=config_path)
     _report(result, out)

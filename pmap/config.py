@@ -23,6 +23,7 @@ from pmap.errors import ConfigError, InputError
 from pmap.geostats.interpolate import KrigingSettings
 from pmap.io.crs import normalise_crs
 from pmap.io.samples import SampleColumns
+from pmap.prescribe.clustering import ClusterParams
 from pmap.prescribe.rates import RateRule
 from pmap.prescribe.zones import ZoneParams
 from pmap.soil.availability import PartitionParams
@@ -34,7 +35,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - exercised on Python 3.10 only
     import tomli as tomllib
 
-__all__ = ["FieldInfo", "GridSettings", "FieldConfig", "load_config", "configuration_reference"]
+__all__ = ["FieldInfo", "GridSettings", "OutputSettings", "FieldConfig", "load_config", "configuration_reference"]
 
 
 _RECORD = "common practice, no source"
@@ -52,6 +53,13 @@ class FieldInfo:
         "unit": "YYYY-MM-DD", "doc": "date the samples were taken", "source": _RECORD})
     sampling_depth_cm: str = field(default="0-15", metadata={
         "unit": "cm", "doc": "sampling depth interval, for the record", "source": _RECORD})
+    boundary_feature: str = field(default="", metadata={
+        "unit": "", "doc": "the one feature of a boundary file holding several fields to use: "
+        "its name (see field.name_attribute), ATTR=VALUE, or '#N' for the N-th feature; empty = all "
+        "features, merged, with a warning (the CLI's --field)", "source": _RECORD})
+    name_attribute: str = field(default="", metadata={
+        "unit": "", "doc": "attribute naming the boundary features; empty = the first of "
+        "field, field_name, fieldname, name, id (any case)", "source": _RECORD})
 
 
 @dataclass(frozen=True)
@@ -115,6 +123,32 @@ class GridSettings:
 
 
 @dataclass(frozen=True)
+class OutputSettings:
+    """What the prescription files are written as (the CLI's --vector-crs sets one key)."""
+
+    vector_crs: str = field(
+        default="working",
+        metadata={"unit": "", "doc": "CRS of the GeoPackage and Shapefile "
+                  "outputs: \"working\" (the run's projected CRS, as the GeoTIFFs) or a CRS such "
+                  "as EPSG:4326 (longitude/latitude, which many in-cab displays expect). The "
+                  "GeoJSON is always WGS 84 (RFC 7946)", "source": "RFC 7946 for GeoJSON; "
+                  "common practice, no source"},
+    )
+    taskdata: bool = field(
+        default=True,
+        metadata={"unit": "", "doc": "write ISO 11783-10 task data (TASKDATA/TASKDATA.XML and "
+                  "its grid file) for task controllers", "source": "ISO 11783-10"},
+    )
+
+    def __post_init__(self) -> None:
+        if self.vector_crs != "working":
+            try:
+                normalise_crs(self.vector_crs)
+            except InputError as exc:
+                raise ConfigError(f"output.vector_crs: {exc}") from exc
+
+
+@dataclass(frozen=True)
 class FieldConfig:
     """Everything that steers one field's run; each attribute is one TOML section."""
 
@@ -127,6 +161,8 @@ class FieldConfig:
     soil_test_equivalent: SoilTestEquivalent = dataclasses.field(default_factory=SoilTestEquivalent)
     rates: RateRule = dataclasses.field(default_factory=RateRule)
     zones: ZoneParams = dataclasses.field(default_factory=ZoneParams)
+    clusters: ClusterParams = dataclasses.field(default_factory=ClusterParams)
+    output: OutputSettings = dataclasses.field(default_factory=OutputSettings)
 
     def replace(self, section: str, **changes: Any) -> FieldConfig:
         """A copy with some keys of one section changed (``cfg.replace("grid", crs="EPSG:32616")``)."""

@@ -22,10 +22,10 @@ import numpy as np
 
 from pmap._version import __version__
 from pmap.cautions import CAUTIONS, CAUTIONS_SHORT
-from pmap.io import rasters, vectors
+from pmap.io import isoxml, rasters, tables, vectors
 from pmap.io.manifest import file_record, write_manifest
 from pmap.io.publish import OutputTransaction, open_transaction
-from pmap.prescribe.zones import CLASS_LABELS
+from pmap.prescribe.prescription import NOT_SAMPLED
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
 
 if TYPE_CHECKING:
@@ -48,6 +48,8 @@ class LayerInfo:
 
 # Colour-blind-safe categorical colours (Okabe & Ito 2008 palette), chosen per layer.
 _ZONE_COLOURS = {1: "#D55E00", 2: "#E69F00", 3: "#009E73", 4: "#56B4E9", 5: "#0072B2"}
+_THREE_ZONE_COLOURS = {1: "#D55E00", 2: "#009E73", 3: "#0072B2"}
+_NOT_SAMPLED_COLOUR = "#BBBBBB"
 _MECHANISM_COLOURS = {1: "#D55E00", 2: "#0072B2", 3: "#CC79A7"}
 _RISK_COLOURS = {1: "#F0E442", 2: "#E69F00", 3: "#882255"}
 
@@ -70,38 +72,57 @@ LAYERS: dict[str, LayerInfo] = {
         "Fixation mechanism", "class", classes=MECHANISM_LABELS, colours=_MECHANISM_COLOURS),
     "fixation_class": LayerInfo(
         "Fixation risk class", "class", classes=RISK_CLASS_LABELS, colours=_RISK_COLOURS),
-    "zones": LayerInfo(
-        "Soil-test P zones", "class",
-        classes={i + 1: label for i, label in enumerate(CLASS_LABELS)}, colours=_ZONE_COLOURS),
+    "stp_deficiency_probability": LayerInfo(
+        "Probability soil-test P is below the critical level", "probability 0-1", "cividis"),
+    "zones": LayerInfo("Soil-test P zones", "class"),
     "p2o5_rate": LayerInfo("P2O5 rate per cell", "kg P2O5/ha", "viridis"),
     "p2o5_zone_rate": LayerInfo("P2O5 rate by zone (prescription)", "kg P2O5/ha", "viridis"),
+    "product_zone_rate": LayerInfo("Product rate by zone (prescription)", "kg product/ha",
+                                   "viridis"),
 }
 
 
 #: Layers that carry advice, so their maps carry the cautions.
-_PRESCRIPTION_LAYERS = ("zones", "p2o5_rate", "p2o5_zone_rate", "stp_equivalent")
+_PRESCRIPTION_LAYERS = ("zones", "p2o5_rate", "p2o5_zone_rate", "product_zone_rate",
+                        "stp_equivalent", "stp_deficiency_probability")
+#: Layers drawn with one legend entry per distinct value (a prescription has few rates).
+_DISCRETE_RATE_LAYERS = ("p2o5_zone_rate", "product_zone_rate")
 
 
 def layer_info(name: str, zone_labels: tuple[str, ...] | None = None) -> LayerInfo:
     """Description of a layer, including ``<property>_variance`` layers.
 
-    ``zone_labels`` (from the ``[zones]`` section) name the zone classes when they differ
-    from the default five.
+    ``zone_labels`` name the zone classes (the run's interpretation table); the zone
+    layer also holds code 255 for cells too far from every sample ("not sampled").
     """
-    if name == "zones" and zone_labels is not None and len(zone_labels) != len(CLASS_LABELS):
-        classes = {i + 1: label for i, label in enumerate(zone_labels)}
-        colours = {k: "#{:02x}{:02x}{:02x}".format(*rgba[:3])
-                   for k, rgba in rasters.class_colours(list(classes)).items()}
+    if name == "zones":
+        labels = tuple(zone_labels or ())
+        classes = {i + 1: label for i, label in enumerate(labels)}
+        if len(labels) == 3:
+            colours = dict(_THREE_ZONE_COLOURS)
+        elif len(labels) == 5:
+            colours = dict(_ZONE_COLOURS)
+        else:
+            colours = {k: "#{:02x}{:02x}{:02x}".format(*rgba[:3])
+                       for k, rgba in rasters.class_colours(list(classes)).items()}
+        classes[NOT_SAMPLED] = "not sampled (no rate)"
+        colours[NOT_SAMPLED] = _NOT_SAMPLED_COLOUR
         return LayerInfo(LAYERS["zones"].title, "class", classes=classes, colours=colours)
-    if name == "zones" and zone_labels is not None:
-        return LayerInfo(LAYERS["zones"].title, "class",
-                         classes={i + 1: label for i, label in enumerate(zone_labels)},
-                         colours=_ZONE_COLOURS)
     if name.endswith("_variance"):
         base = LAYERS[name[: -len("_variance")]]
         unit = "pH units^2" if base.unit == "pH units" else f"({base.unit})^2"
         return LayerInfo(base.title.replace("(kriged)", "kriging variance"), unit, "magma")
     return LAYERS[name]
+
+
+def _discrete_rates(array: np.ndarray, unit: str) -> tuple[np.ndarray, dict[int, str]]:
+    """Code a zone-rate raster by its distinct rates, for a legend with one entry per rate."""
+    values = np.asarray(array, dtype=float)
+    rates = sorted({round(float(v), 6) for v in values[np.isfinite(values)]})
+    codes = np.zeros(values.shape, dtype=np.uint8)
+    for k, rate in enumerate(rates[:250], start=1):
+        codes[np.isclose(values, rate)] = k
+    return codes, {k: f"{rate:g} {unit}" for k, rate in enumerate(rates[:250], start=1)}
 
 
 def _model_text(interp: Any) -> str:
@@ -234,8 +255,10 @@ def _provenance(result: FieldResult, name: str) -> dict[str, str]:
     elif name in ("available_p", "fe_al_p", "ca_p", "occluded_p", "fixation_risk",
                   "fixation_mechanism", "fixation_class"):
         tags["METHOD"] = "pmap soil model v1 on kriged inputs (docs/soil-model.md)"
-    elif name in ("zones", "p2o5_rate", "p2o5_zone_rate", "stp_equivalent"):
-        tags["METHOD"] = f"pmap rates v1; soil-test P: {result.stp_source['description']}"
+    elif name in _PRESCRIPTION_LAYERS:
+        tags["METHOD"] = f"pmap rates v2; soil-test P: {result.stp_source['description']}"
+        tags["BASIS"] = result.prescription["basis"]
+        tags["INTERPRETATION"] = json.dumps(_json_safe(result.interpretation.as_dict()))
     return tags
 
 
@@ -271,8 +294,9 @@ def write_outputs(
             s for s in (result.config.field.farm, f"sampled {result.config.field.sampling_date}"
                         if result.config.field.sampling_date else "") if s
         )
+        basis_note = _basis_note(result)
         for name, array in result.layers.items():
-            info = layer_info(name, result.config.zones.labels)
+            info = layer_info(name, tuple(result.prescription["zone_labels"]))
             colormap = ({k: _hex_to_rgba(v) for k, v in info.colours.items()}
                         if info.colours else None)
             rasters.write_cog(
@@ -281,12 +305,20 @@ def write_outputs(
                 class_labels=info.classes, colormap=colormap,
             )
             outputs[f"rasters/{name}.tif"] = f"{info.title} ({info.unit})"
+            shown, classes, colours = array, info.classes, info.colours
+            if name in _DISCRETE_RATE_LAYERS:
+                shown, classes = _discrete_rates(array, info.unit)
+                colours = None
+            limits = (0.0, 1.0) if name in ("stp_deficiency_probability",
+                                            "fixation_risk") else (None, None)
             maps.plot_layer(
-                tmp / "maps" / f"{name}.png", array, grid,
+                tmp / "maps" / f"{name}.png", shown, grid,
                 title=f"{result.config.field.name}: {info.title}", unit=info.unit,
                 subtitle=subtitle, samples_xy=samples_xy, boundary=inputs.boundary,
-                classes=info.classes, colours=info.colours, cmap=info.cmap,
-                footnote=CAUTIONS_SHORT if name in _PRESCRIPTION_LAYERS else "",
+                classes=classes, colours=colours, cmap=info.cmap,
+                vmin=limits[0], vmax=limits[1],
+                footnote=(f"{basis_note} {CAUTIONS_SHORT}" if name in _PRESCRIPTION_LAYERS
+                          else ""),
             )
             outputs[f"maps/{name}.png"] = f"review map of {info.title}"
         for name, interp in result.interpolations.items():
@@ -300,16 +332,43 @@ def write_outputs(
             )
             outputs[f"maps/variogram_{name}.png"] = f"empirical and fitted variogram of {name}"
 
-        polygons = vectors.patch_polygons(
-            result.patch_labels, [p["class_id"] for p in result.patches], grid)
-        frame = vectors.zone_frame(polygons, result.patches, grid.crs)
+        stem = tables.output_stem(result.config.field.name, result.config.field.farm,
+                                  result.config.field.sampling_date)
+        rows = _polygon_rows(result)
+        info = result.config.field
+        frame = vectors.zone_frame(
+            [(result.polygons[p.zone_id], p.class_id) for p in result.patches], rows, grid.crs,
+            zone_ids=[p.zone_id for p in result.patches], field=info.name, farm=info.farm,
+            date=info.sampling_date or None, units=result.rule.units,
+            out_of_field_kg_ha=result.rule.out_of_field_rate_kg_ha)
         stamp = output_timestamp(result.config)
-        vectors.write_geopackage(tmp / "rate_zones.gpkg", frame, timestamp=stamp)
-        outputs["rate_zones.gpkg"] = "rate-zone polygons (layer rate_zones) with class, area, rate"
-        vectors.write_geojson_wgs84(tmp / "rate_zones.geojson", frame)
-        outputs["rate_zones.geojson"] = "the same polygons in WGS84 GeoJSON"
-        vectors.write_shapefile(tmp / "shapefile" / "rate_zones.shp", frame, timestamp=stamp)
-        outputs["shapefile/rate_zones.shp"] = "the same polygons as a Shapefile (10-character field names)"
+        vector_crs = (None if result.config.output.vector_crs == "working"
+                      else result.config.output.vector_crs)
+        crs_word = "the run's CRS" if vector_crs is None else vector_crs
+        vectors.write_geopackage(tmp / f"{stem}_rate_zones.gpkg", frame, timestamp=stamp,
+                                 crs=vector_crs)
+        outputs[f"{stem}_rate_zones.gpkg"] = (
+            f"rate-zone polygons (layer rate_zones, {crs_word}) with class, basis, area, rates")
+        vectors.write_geojson(tmp / f"{stem}_rate_zones.geojson", frame, crs="EPSG:4326")
+        outputs[f"{stem}_rate_zones.geojson"] = "the same polygons in WGS84 GeoJSON"
+        vectors.write_shapefile(tmp / "shapefile" / f"{stem}_rate_zones.shp", frame,
+                                timestamp=stamp, crs=vector_crs)
+        outputs[f"shapefile/{stem}_rate_zones.shp"] = (
+            f"the same polygons as a Shapefile ({crs_word}, 10-character field names)")
+        tables.write_zone_table_csv(tmp / f"{stem}_zones.csv", rows, units=result.rule.units)
+        outputs[f"{stem}_zones.csv"] = "one line per rate polygon: class, area, soil test, rates"
+        if result.config.output.taskdata:
+            isoxml.write_taskdata(
+                tmp, rates_kg_ha=result.layers["product_zone_rate"], grid=grid,
+                boundary=inputs.boundary,
+                zones=[(result.polygons[p.zone_id], p.product_kg_ha) for p in result.patches],
+                product_name=result.prescription["product"],
+                field_name=result.config.field.name, farm=result.config.field.farm,
+                out_of_field_kg_ha=result.rule.out_of_field_rate_kg_ha,
+                basis=result.prescription["basis"])
+            outputs["TASKDATA/TASKDATA.XML"] = (
+                "ISO 11783-10 task data for a task controller: partfield, treatment zones and "
+                "a WGS 84 grid (GRD00001.BIN) of product setpoints, DDI 6 in mg/m2")
 
         given = {"samples": samples_path, "boundary": boundary_path, "config": config_path}
         sources = {kind: _input_source(path) if path is not None else None
@@ -339,6 +398,38 @@ def write_outputs(
     except BaseException as exc:
         transaction.fail(exc)  # removes the staging directory; a failed write -> OutputError
         raise
+
+
+def _rounded(obj: Any, decimals: int = 4) -> Any:
+    """Floats rounded for the record (tables keep full precision in the API)."""
+    if isinstance(obj, dict):
+        return {k: _rounded(v, decimals) for k, v in obj.items()}
+    if isinstance(obj, list):
+        return [_rounded(v, decimals) for v in obj]
+    if isinstance(obj, float) and np.isfinite(obj):
+        return round(obj, decimals)
+    return obj
+
+
+def _basis_note(result: Any) -> str:
+    """The map footnote's first sentence: what the rates rest on, and any flat-rate notice."""
+    basis = result.prescription["basis"]
+    text = (f"Rates rest on: {basis.upper()} ({result.stp_source['description']}); classes: "
+            f"{result.interpretation.region} {result.interpretation.method}, critical "
+            f"{result.interpretation.critical_ppm:g}, limit {result.interpretation.limit_ppm:g} "
+            "mg/kg.")
+    if result.prescription.get("single_rate_notice"):
+        text += " " + result.prescription["single_rate_notice"] + "."
+    if result.stp_source.get("risk_aware_rule"):
+        text += " " + result.stp_source["risk_aware_rule"] + "."
+    return text
+
+
+def _polygon_rows(result: Any) -> list[dict[str, Any]]:
+    """Rows of the rate polygons: each record with its totals and the field, farm and date."""
+    info = result.config.field
+    return [{**patch.as_dict(), "field": info.name, "farm": info.farm,
+             "date": info.sampling_date} for patch in result.patches]
 
 
 def _as_written(array: np.ndarray, grid: Any) -> np.ndarray:
@@ -409,8 +500,10 @@ def _summary(result, inputs, sources, copied, outputs):
         "fixation": fixation,
         "soil_test_p_driving_rates": result.stp_source,
         "rate_rule": dataclasses.asdict(result.rule),
-        "zones": result.zone_table,
-        "totals": result.totals,
+        "prescription": result.prescription,
+        "zones": _rounded(result.class_table),
+        "rate_polygons": _rounded(result.zone_table),
+        "totals": _rounded(result.totals),
         "warnings": result.warnings,
         "outputs": outputs,
         "config": result.config.as_dict(),

@@ -11,6 +11,7 @@ finished, and an existing one is replaced only after the new one is whole.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import logging
 import warnings
 from dataclasses import dataclass, field
@@ -28,15 +29,20 @@ from pmap.io import boundary as boundary_io
 from pmap.io.crs import choose_working_crs, normalise_crs, to_pyproj
 from pmap.io.samples import SampleTable, duplicate_tolerance_m, load_samples
 from pmap.outputs import check_output_dir, write_outputs
+from pmap.prescribe import prescription as rx
 from pmap.prescribe import rates as rate_rules
-from pmap.prescribe.rates import RateRule, resolve_rule
-from pmap.prescribe.zones import label_patches, make_zones, patch_means, zone_statistics
+from pmap.prescribe.clustering import cluster_zones, zone_means, zone_rates
+from pmap.prescribe.interpretation import InterpretationTable
+from pmap.prescribe.patches import clean_zones, min_cells_for_area, min_width_cells
+from pmap.prescribe.rates import RateRule, resolve_interpretation
 from pmap.soil.availability import SoilPools, partition_total_p
 from pmap.soil.conversions import convert_soil_test
 from pmap.soil.fixation import FixationRisk, fixation_risk
 
-__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "krige_properties",
-           "require_phosphorus", "driver_method", "rate_rule_for", "KRIGED_PROPERTIES"]
+__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "run_each_feature",
+           "krige_properties",
+           "require_phosphorus", "driver_method", "rate_rule_for", "interpretation_for",
+           "KRIGED_PROPERTIES"]
 
 log = logging.getLogger(__name__)
 
@@ -74,22 +80,36 @@ class FieldInputs:
 
 @dataclass
 class FieldResult:
-    """What one field's run produced; arrays are 2-D on ``grid`` with NaN outside the field."""
+    """What one field's run produced; arrays are 2-D on ``grid`` with NaN outside the field.
+
+    ``patches`` are the rate polygons' records (:class:`pmap.prescribe.prescription.Patch`,
+    zone ids 1..n, areas from the polygons), ``polygons`` their geometries (zone id ->
+    shapely geometry in ``grid.crs``, tiling the boundary), ``patch_labels`` the zone id of
+    every cell, ``class_table`` and ``totals`` derived from ``patches`` only.
+    """
 
     out_dir: Path
     grid: GridSpec
     config: FieldConfig
     interpolations: dict[str, Interpolation]
     layers: dict[str, np.ndarray]
-    zone_table: list[dict[str, Any]]
-    patches: list[dict[str, Any]]
+    class_table: list[dict[str, Any]]
+    patches: list[rx.Patch]
+    polygons: dict[int, Any]
     patch_labels: np.ndarray
     totals: dict[str, Any]
     stp_source: dict[str, Any]
     rule: RateRule
+    interpretation: InterpretationTable
+    prescription: dict[str, Any]
     summary: dict[str, Any] = field(repr=False)
     outputs: dict[str, str] = field(default_factory=dict, repr=False)
     warnings: list[str] = field(default_factory=list)
+
+    @property
+    def zone_table(self) -> list[dict[str, Any]]:
+        """The per-polygon table (one row per rate polygon), as the CSV holds it."""
+        return [p.as_dict() for p in self.patches]
 
 
 def prepare_inputs(
@@ -97,7 +117,9 @@ def prepare_inputs(
 ) -> FieldInputs:
     """Read, check and reproject the samples and the boundary; fix the run's grid."""
     user_crs = normalise_crs(config.grid.crs) if config.grid.crs else None
-    outline, outline_crs = boundary_io.read_boundary(boundary_path, crs=user_crs)
+    outline, outline_crs = boundary_io.read_boundary(
+        boundary_path, crs=user_crs, feature=config.field.boundary_feature or None,
+        name_attribute=config.field.name_attribute or None)
     # The user's CRS reads coordinates that carry none; it is the working CRS only if it
     # keeps lengths true over the field (measured), else the field's UTM zone is.
     lon, lat = boundary_io.field_lonlat_points(outline, outline_crs)
@@ -248,6 +270,46 @@ def run_field(
     return result
 
 
+def run_each_feature(
+    samples: str | Path,
+    boundary: str | Path,
+    out_root: str | Path,
+    config: FieldConfig | str | Path | None = None,
+    *,
+    overwrite: bool = False,
+    config_path: str | Path | None = None,
+) -> list[tuple[str, Path, FieldResult | PmapError]]:
+    """Run every feature of a boundary file as its own field, into ``out_root/<name>/``.
+
+    Each field is named by its feature (``field.name``), uses the samples inside it, and
+    gets its own output directory (a safe slug of the name, unique per feature).  A field
+    that fails is recorded with its error and the others go on.
+
+    Returns
+    -------
+    list of (name, output directory, FieldResult or the PmapError it failed with)
+    """
+    if not isinstance(config, FieldConfig):
+        config_path = config if config is not None else config_path
+        config = load_config(config)
+    user_crs = normalise_crs(config.grid.crs) if config.grid.crs else None
+    features = boundary_io.boundary_features(boundary, user_crs,
+                                             name_attribute=config.field.name_attribute or None)
+    slugs = boundary_io.feature_slugs([f.name for f in features])
+    results: list[tuple[str, Path, FieldResult | PmapError]] = []
+    for feature, slug in zip(features, slugs, strict=True):
+        out_dir = Path(out_root) / slug
+        one = config.replace("field", name=feature.name, boundary_feature=feature.position)
+        try:
+            result: FieldResult | PmapError = run_field(
+                samples, boundary, out_dir, one, overwrite=overwrite, config_path=config_path)
+        except PmapError as exc:
+            log.error("%s: %s", feature.name, exc)
+            result = exc
+        results.append((feature.name, out_dir, result))
+    return results
+
+
 def driver_method(samples: SampleTable, config: FieldConfig) -> str:
     """Soil-test method of the values that will drive zones and rates.
 
@@ -268,7 +330,7 @@ def rate_rule_for(method: str, config: FieldConfig) -> RateRule:
         The rule has no published default for the method, or it asks for a conversion
         pmap refuses (to or from Olsen).
     """
-    rule = resolve_rule(config.rates, method)
+    rule = rate_rules.resolve_rule(config.rates, method)
     if rule.soil_test_method != method and "olsen" in (method, rule.soil_test_method):
         raise ConfigError(
             f"rates.soil_test_method is {rule.soil_test_method} but the soil-test P is "
@@ -280,11 +342,22 @@ def rate_rule_for(method: str, config: FieldConfig) -> RateRule:
     return rule
 
 
+def interpretation_for(method: str, config: FieldConfig) -> InterpretationTable:
+    """The interpretation table that gives both the zone classes and the rule's two levels.
+
+    Checked before any kriging; raises ConfigError when the method has no published table
+    and the config does not give the values (the message names the keys).
+    """
+    return resolve_interpretation(config.rates, method, config.zones.breaks, config.zones.labels)
+
+
 def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldResult:
     """Every stage between ingest and output: kriging, soil model, zones and rates."""
     grid = inputs.grid
     require_phosphorus(inputs.samples)
-    rule = rate_rule_for(driver_method(inputs.samples, config), config)  # fail before kriging
+    method = driver_method(inputs.samples, config)
+    rule = rate_rule_for(method, config)  # fail before kriging
+    table = interpretation_for(method, config)
     kriged = krige_properties(inputs.samples, grid.inside_coords(), config)
     estimates = _physical_estimates(kriged)
 
@@ -300,11 +373,15 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
         labile_p_mg_kg=pools.available if pools is not None else None,
     )
 
-    # The soil-test P that drives zones and rates, and the rule for its method.
+    # The soil-test P that drives zones and rates, its uncertainty, and the rule's method.
     stp, method, stp_source = _rate_driver(estimates, pools, inputs.samples.stp_method, config)
-    rule_stp = stp
+    basis = rx.BASIS_MEASURED if stp_source["source"] == "measured" else rx.BASIS_MODEL
+    deficiency, driver, risk_note = _deficiency(kriged.get("stp"), stp, method, rule)
+    if risk_note:
+        stp_source["risk_aware_rule"] = risk_note
+    rule_stp = driver
     if rule.soil_test_method != method:
-        rule_stp = convert_soil_test(stp, method, rule.soil_test_method)
+        rule_stp = convert_soil_test(driver, method, rule.soil_test_method)
         stp_source["rule_conversion"] = (
             f"rates.critical_ppm and rates.maintenance_limit_ppm refer to "
             f"{rule.soil_test_method}; {method} values were converted with "
@@ -312,10 +389,77 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
         )
         warnings.warn(stp_source["rule_conversion"], PmapWarning, stacklevel=2)
 
-    # Zones and rates.
-    stp2d = grid.fill(stp)
-    zones = make_zones(stp2d, grid.mask, grid.cell_area_ha, config.zones, method)
-    rate_cells = rate_rules.p2o5_rate_kg_ha(rule_stp, rule)
+    # Cells too far from every sample get no rate.
+    distance = rx.distance_to_samples(grid.inside_coords(), inputs.samples.coords)
+    spacing = rx.sample_spacing_m(inputs.samples.coords)
+    max_distance = (rule.max_distance_from_sample_m if rule.max_distance_from_sample_m
+                    else rule.max_distance_spacings * spacing)
+    covered = rx.rate_coverage(distance, max_distance)
+    coverage = {
+        "sample_spacing_m": spacing, "max_distance_from_sample_m": max_distance,
+        "rule": ("rates.max_distance_from_sample_m" if rule.max_distance_from_sample_m
+                 else f"{rule.max_distance_spacings:g} x the median sample spacing"),
+        "area_without_rate_ha": float((~covered).sum()) * grid.cell_area_ha,
+    }
+    if not covered.all():
+        warnings.warn(
+            f"{coverage['area_without_rate_ha']:.2f} ha of the field lie more than "
+            f"{max_distance:.0f} m from every sample ({coverage['rule']}) and get no rate "
+            f"(zone 'not sampled', {rule.out_of_field_rate_kg_ha:g} kg/ha of product): sample "
+            "them or check the boundary file", PmapWarning, stacklevel=2)
+
+    # Zones: the table's classes of the rule's soil test (or clusters of chosen layers),
+    # cleaned to a boom's scale.
+    covered2d = grid.fill(covered, outside=False).astype(bool)
+    clusters = None
+    class_labels, roles = table.labels, table.roles
+    if config.clusters.method == "off":
+        classes = grid.fill(table.classify(rule_stp), outside=0).astype(np.uint8)
+    else:
+        layers_for = {"stp": grid.fill(rule_stp), "ph": grid.fill(ph),
+                      "fixation_risk": grid.fill(risk.index)}
+        layers_for.update({name: grid.fill(estimates[name]) for name in estimates
+                           if name not in ("stp", "ph")})
+        if pools is not None:
+            layers_for["available_p"] = grid.fill(pools.available)
+        from pmap.io.rasters import read_onto_grid
+
+        for name, path in config.clusters.rasters.items():
+            layers_for[name] = read_onto_grid(path, grid)
+        missing = [n for n in config.clusters.layers if n not in layers_for]
+        if missing:
+            raise ConfigError(f"clusters.layers: {', '.join(missing)} not mapped in this run "
+                              f"(mapped: {', '.join(sorted(layers_for))})")
+        clusters = cluster_zones(layers_for, grid.mask & covered2d, config.clusters)
+        for note in clusters.notes:
+            warnings.warn(note, PmapWarning, stacklevel=2)
+        classes = clusters.zones.astype(np.uint8)
+        class_labels = clusters.labels
+    classes = clean_zones(
+        classes, grid.mask & (classes > 0),
+        min_width_cells=min_width_cells(config.zones.min_width_m, grid.cell_size),
+        min_cells=min_cells_for_area(config.zones.min_mapping_unit_ha, grid.cell_area_ha))
+    zones = np.where(covered2d, classes, np.where(grid.mask, rx.NOT_SAMPLED, 0)).astype(np.uint8)
+    if clusters is not None:  # a cluster's role: the table's role at its mean soil test
+        means = zone_means(classes, grid.fill(rule_stp), clusters.n_zones)
+        roles = tuple(table.role_of(int(c)) if c > 0 else "none"
+                      for c in table.classify(means))
+
+    rate_cells = np.where(covered, rate_rules.p2o5_rate_kg_ha(rule_stp, rule), np.nan)
+    grade = rate_rules.product_grade(rule)
+    product = rate_rules.product_label(rule)
+    patches, labels = rx.prescription_patches(
+        zones, class_labels, cell_area_ha=grid.cell_area_ha, stp=grid.fill(stp),
+        rule_stp=grid.fill(rule_stp),
+        rate_fn=lambda s: rate_rules.p2o5_rate_kg_ha(s, rule),
+        product_fn=lambda p: rate_rules.product_rates(p, rule), product=product, grade=grade,
+        basis=basis, roles=roles,
+        deficiency=grid.fill(deficiency) if deficiency is not None else None,
+        no_rate_product_kg_ha=rule.out_of_field_rate_kg_ha,
+    )
+    if clusters is not None and config.clusters.rates_kg_ha:
+        patches = _table_rates(patches, clusters, config, rule)
+    polygons, patches, labels = _polygons_for(patches, labels, inputs.boundary, grid, config)
 
     layers: dict[str, np.ndarray] = {}
     for name, interp in kriged.items():
@@ -327,26 +471,131 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
         layers["ca_p"] = grid.fill(pools.ca)
         layers["occluded_p"] = grid.fill(pools.occluded)
     if "stp" not in kriged:
-        layers["stp_equivalent"] = stp2d
+        layers["stp_equivalent"] = grid.fill(stp)
+    if deficiency is not None:
+        layers["stp_deficiency_probability"] = grid.fill(deficiency)
     layers["fixation_risk"] = grid.fill(risk.index)
     layers["fixation_mechanism"] = grid.fill(risk.mechanism, outside=0).astype(np.uint8)
     layers["fixation_class"] = grid.fill(risk.risk_class, outside=0).astype(np.uint8)
-    layers["zones"] = zones
+    zone_class = np.array([0] + [p.class_id for p in patches], dtype=np.uint8)
+    layers["zones"] = zone_class[labels]
     layers["p2o5_rate"] = grid.fill(rate_cells)
-
-    avail2d = layers.get("available_p")
-    patches, labels = _prescription_patches(zones, stp2d, grid.fill(rule_stp), avail2d, grid,
-                                            config.zones.labels, rule)
-    zone_rates = np.array([np.nan] + [p["p2o5_kg_ha"] for p in patches])
+    zone_rates = np.array([np.nan] + [p.p2o5_kg_ha for p in patches])
     layers["p2o5_zone_rate"] = zone_rates[labels]
-    zone_table, totals = _zone_table(patches, zones, stp2d, avail2d, grid,
-                                     config.zones.labels, rule)
+    product_rates = np.array([np.nan] + [p.product_kg_ha for p in patches])
+    layers["product_zone_rate"] = product_rates[labels]
 
+    totals = rx.field_totals(patches)
+    cost = rate_rules.product_cost(totals["product_total_kg"], rule)
+    if cost is not None:
+        totals["product_cost"] = cost
+        totals["currency"] = rule.currency
+    notice = rx.single_rate_notice(patches)
+    if notice:
+        warnings.warn(notice, PmapWarning, stacklevel=2)
+    prescription = {
+        "interpretation": table.as_dict(), "basis": basis, "single_rate_notice": notice,
+        "coverage": coverage, "product": product, "product_grade_n_p2o5_k2o": list(grade),
+        "out_of_field_rate_kg_ha": rule.out_of_field_rate_kg_ha,
+        "zone_labels": list(class_labels),
+        "zones_by": ("interpretation table classes" if clusters is None
+                     else f"{clusters.method} clusters"),
+        "clusters": clusters.as_dict() if clusters is not None else None,
+        "deficiency_probability": (
+            {"critical_ppm": rule.critical_ppm, "method": rule.soil_test_method,
+             "space": "log" if kriged["stp"].log else "linear"}
+            if deficiency is not None else
+            {"note": "not computed: the soil-test P driving the rates is a model estimate "
+                     "without a kriging variance"}),
+    }
     return FieldResult(
         out_dir=out_dir, grid=grid, config=config, interpolations=kriged, layers=layers,
-        zone_table=zone_table, patches=patches, patch_labels=labels, totals=totals,
-        stp_source=stp_source, rule=rule, summary={},
+        class_table=rx.class_table(patches), patches=patches, polygons=polygons,
+        patch_labels=labels, totals=totals, stp_source=stp_source, rule=rule,
+        interpretation=table, prescription=prescription, summary={},
     )
+
+
+def _table_rates(patches: list[rx.Patch], clusters: Any, config: FieldConfig,
+                 rule: RateRule) -> list[rx.Patch]:
+    """The user's per-zone rate table (``clusters.rates_kg_ha``) on every polygon of a zone."""
+    table = zone_rates(clusters, config.clusters, lambda s: s, np.zeros(clusters.n_zones))
+    out = []
+    for patch in patches:
+        if patch.class_id == rx.NOT_SAMPLED:
+            out.append(patch)
+            continue
+        product, p2o5, nitrogen = rate_rules.product_rates(
+            np.array([table[patch.class_id - 1]]), rule)
+        out.append(dataclasses.replace(patch, p2o5_kg_ha=float(p2o5[0]),
+                                       product_kg_ha=float(product[0]),
+                                       n_kg_ha=float(nitrogen[0])))
+    return out
+
+
+def _deficiency(
+    interp: Interpolation | None, stp: np.ndarray, method: str, rule: RateRule,
+) -> tuple[np.ndarray | None, np.ndarray, str]:
+    """Probability of deficiency per cell (lab method) and the soil test the rule is fed.
+
+    The probability that soil-test P lies below the rule's critical level comes from the
+    kriging distribution of the lab's soil test (log space when it was log-kriged), with the
+    critical level expressed in the lab's method.  With the risk-aware option the rule is
+    fed the soil test's quantile at the threshold instead of the estimate.
+    """
+    if interp is None:
+        if rule.deficiency_probability_threshold is not None:
+            raise ConfigError(
+                "rates.deficiency_probability_threshold needs a kriged lab soil-test P; the "
+                "rates here rest on a model estimate without a kriging variance: unset it")
+        return None, stp, ""
+    critical = rule.critical_ppm
+    if rule.soil_test_method != method:
+        critical = float(convert_soil_test(np.array([critical]), rule.soil_test_method,
+                                           method)[0])
+    mean, variance = interp.kriged_moments()
+    probability = rx.deficiency_probability(mean, variance, critical, log=interp.log)
+    q = rule.deficiency_probability_threshold
+    if q is None:
+        return probability, stp, ""
+    note = (f"RISK-AWARE RULE: the rule is applied to the soil-test P that each cell falls "
+            f"below with probability {q:g} (kriging distribution), so a cell counts as below "
+            f"critical when its probability of deficiency exceeds {q:g}")
+    return probability, rx.stp_quantile(mean, variance, q, log=interp.log), note
+
+
+def _polygons_for(
+    patches: list[rx.Patch], labels: np.ndarray, boundary: Any, grid: GridSpec,
+    config: FieldConfig,
+) -> tuple[dict[int, Any], list[rx.Patch], np.ndarray]:
+    """The rate polygons tiling the boundary, and the records and labels that match them.
+
+    Polygons cut below the minimum mapping unit join a neighbour and take its rate; the
+    survivors are renumbered 1..n and their areas are the polygons' areas.
+    """
+    from pmap.io.vectors import coverage_polygons
+
+    polys, merged = coverage_polygons(
+        labels, [p.class_id for p in patches], grid, boundary,
+        min_area_m2=config.zones.min_mapping_unit_ha * 10_000.0)
+
+    def final(zid: int) -> int:
+        while zid in merged:
+            zid = merged[zid]
+        return zid
+
+    survivors = sorted(polys)
+    new_id = {old: k + 1 for k, old in enumerate(survivors)}
+    remap = np.zeros(len(patches) + 1, dtype=np.int32)
+    for old in range(1, len(patches) + 1):
+        remap[old] = new_id[final(old)]
+    by_id = {p.zone_id: p for p in patches}
+    records = [dataclasses.replace(by_id[old], zone_id=new_id[old],
+                                   area_ha=polys[old].area / 10_000.0,
+                                   n_cells=int(sum(by_id[o].n_cells for o in by_id
+                                                   if final(o) == old)))
+               for old in survivors]
+    return {new_id[old]: polys[old] for old in survivors}, records, remap[labels]
 
 
 #: Physical limits of kriged properties (their units), passed to interpolate(limits=...):
@@ -386,73 +635,3 @@ def _rate_driver(
     return equivalent.to_soil_test(pools.available), equivalent.method, {
         "source": "model estimate", "method": equivalent.method, "description": description,
     }
-
-
-def _prescription_patches(
-    zones: np.ndarray, stp2d: np.ndarray, rule_stp2d: np.ndarray, avail2d: np.ndarray | None,
-    grid: GridSpec, class_labels: tuple[str, ...], rule: RateRule,
-) -> tuple[list[dict[str, Any]], np.ndarray]:
-    """One prescription record per connected zone patch: its area, mean soil test and rate.
-
-    Patch k (``zone_id``) is patch k of :func:`pmap.prescribe.zones.label_patches`, the
-    numbering the polygon writer uses too.  A patch's rate is the rule applied to its mean
-    soil-test P.  Returns the records and the patch-label raster (0 outside).
-    """
-    labels, patch_class = label_patches(zones)
-    counts = np.bincount(labels.ravel(), minlength=len(patch_class) + 1)[1:]
-    mean_stp = patch_means(labels, stp2d)
-    mean_avail = (patch_means(labels, avail2d) if avail2d is not None
-                  else np.full(len(patch_class), np.nan))
-    rates = rate_rules.p2o5_rate_kg_ha(patch_means(labels, rule_stp2d), rule)
-    product_rates = rate_rules.product_kg_ha(rates, rule.product)
-    patches = []
-    for i, cls in enumerate(patch_class.tolist()):
-        area = float(counts[i]) * grid.cell_area_ha
-        patches.append({
-            "zone_id": i + 1,
-            "class_id": cls,
-            "class_label": class_labels[cls - 1],
-            "area_ha": area,
-            "mean_stp_mg_kg": float(mean_stp[i]),
-            "mean_available_p_mg_kg": float(mean_avail[i]),
-            "p2o5_kg_ha": float(rates[i]),
-            "product": rule.product,
-            "product_kg_ha": float(product_rates[i]),
-            "product_total_kg": float(product_rates[i]) * area,
-        })
-    return patches, labels
-
-
-def _zone_table(
-    patches: list[dict[str, Any]], zones: np.ndarray, stp2d: np.ndarray,
-    avail2d: np.ndarray | None, grid: GridSpec, class_labels: tuple[str, ...], rule: RateRule,
-) -> tuple[list[dict[str, Any]], dict[str, Any]]:
-    """Per-class table and field totals from the prescription patches."""
-    layers = {"stp": stp2d} if avail2d is None else {"stp": stp2d, "available_p": avail2d}
-    table = []
-    for row in zone_statistics(zones, layers, grid.cell_area_ha, class_labels):
-        mine = [p for p in patches if p["class_id"] == row["class_id"]]
-        p2o5_kg = sum(p["p2o5_kg_ha"] * p["area_ha"] for p in mine)
-        table.append({
-            "class_id": row["class_id"],
-            "class_label": row["label"],
-            "n_patches": len(mine),
-            "area_ha": round(row["area_ha"], 3),
-            "mean_stp_mg_kg": round(row["stp_mean"], 2),
-            "mean_available_p_mg_kg": (round(row["available_p_mean"], 2)
-                                       if avail2d is not None else None),
-            "p2o5_kg_ha": round(p2o5_kg / row["area_ha"], 1),
-            "p2o5_total_kg": round(p2o5_kg, 1),
-            "product": rule.product,
-            "product_total_kg": round(sum(p["product_total_kg"] for p in mine), 1),
-        })
-    area = grid.n_inside * grid.cell_area_ha
-    p2o5_total = sum(r["p2o5_total_kg"] for r in table)
-    totals = {
-        "area_ha": round(area, 3),
-        "p2o5_total_kg": round(p2o5_total, 1),
-        "product": rule.product,
-        "product_total_kg": round(sum(r["product_total_kg"] for r in table), 1),
-        "mean_p2o5_kg_ha": round(p2o5_total / area, 1),
-    }
-    return table, totals

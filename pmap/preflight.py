@@ -106,7 +106,9 @@ def check_field(
         if config is None:
             return problems
     user_crs = attempt("config", normalise_crs, config.grid.crs) if config.grid.crs else None
-    outline = attempt("boundary", boundary_io.read_boundary, boundary, crs=user_crs)
+    outline = attempt("boundary", boundary_io.read_boundary, boundary, crs=user_crs,
+                      feature=config.field.boundary_feature or None,
+                      name_attribute=config.field.name_attribute or None)
     source = attempt("samples", read_samples, samples, config.samples, crs=user_crs)
     if out_dir is not None:
         from pmap.outputs import check_output_dir

@@ -49,7 +49,7 @@ from shapely.geometry import MultiPolygon, Polygon
 from shapely.geometry.base import BaseGeometry
 
 from pmap._version import __version__
-from pmap.errors import ConfigError, InputError, OutputError, OutputExistsError, PmapWarning
+from pmap.errors import ConfigError, InputError, OutputExistsError, PmapWarning
 from pmap.grid import GridSpec
 
 __all__ = [
@@ -418,13 +418,11 @@ def write_taskdata(
     ET.indent(root)
     document = (b'<?xml version="1.0" encoding="UTF-8"?>\n'
                 + ET.tostring(root, encoding="utf-8") + b"\n")
-    try:
-        target.mkdir(parents=True, exist_ok=True)
-        bin_path.write_bytes(payload)
-        xml_path.write_bytes(document)
-    except OSError as exc:
-        raise OutputError(f"{target}: cannot write the ISO 11783-10 task data "
-                          f"({exc.strerror or exc})") from exc
+    # An OSError (e.g. no space left) propagates: inside a run the output transaction turns
+    # it into an OutputError naming the directory and leaves no half-written output.
+    target.mkdir(parents=True, exist_ok=True)
+    bin_path.write_bytes(payload)
+    xml_path.write_bytes(document)
     return [xml_path, bin_path]
 
 

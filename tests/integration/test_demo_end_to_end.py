@@ -29,7 +29,10 @@ def test_every_output_exists(demo_run):
         assert (out / "maps" / f"{name}.png").stat().st_size > 20_000, name
     for name in ("ph", "total_p", "stp"):
         assert (out / "maps" / f"variogram_{name}.png").is_file()
-    for name in ("rate_zones.gpkg", "rate_zones.geojson", "shapefile/rate_zones.shp", "summary.json",
+    stem = "Harrow-Creek-Farm-invented-demo_Long-Meadow_2026-10-14"
+    for name in (f"{stem}_rate_zones.gpkg", f"{stem}_rate_zones.geojson",
+                 f"shapefile/{stem}_rate_zones.shp", f"{stem}_zones.csv", "summary.json",
+                 "TASKDATA/TASKDATA.XML", "TASKDATA/GRD00001.BIN",
                  "inputs/samples/samples.csv", "inputs/boundary/boundary.geojson",
                  "inputs/config/field.toml", "manifest.json"):
         assert (out / name).is_file(), name
@@ -119,7 +122,9 @@ def test_summary_json(demo_run):
         assert set(prop["cv"]) >= {"mean_error", "rmse", "msdr"}
         assert 0.3 < prop["cv"]["msdr"] < 3
     area = sum(z["area_ha"] for z in summary["zones"])
-    assert area == pytest.approx(summary["grid"]["area_ha"], rel=1e-6)
+    assert area == pytest.approx(summary["totals"]["area_ha"], rel=1e-6)
+    # the polygons cover the boundary, not the cell centres: within 0.1 % of the cells' area
+    assert area == pytest.approx(summary["grid"]["area_ha"], rel=1e-3)
     assert summary["totals"]["p2o5_total_kg"] == pytest.approx(
         sum(z["p2o5_total_kg"] for z in summary["zones"]), abs=1)
     assert "agronomist" in summary["cautions"]
@@ -130,15 +135,31 @@ def test_rate_zone_polygons(demo_run):
     import geopandas as gpd
 
     result, out = demo_run
-    zones = gpd.read_file(out / "rate_zones.gpkg", layer="rate_zones")
+    zones = gpd.read_file(next(out.glob("*_rate_zones.gpkg")), layer="rate_zones")
     assert zones.crs.to_string() == DEMO_CRS
     for column in ("zone_id", "class_id", "class_label", "area_ha", "p2o5_kg_ha",
                    "product_kg_ha", "product_total_kg"):
         assert column in zones.columns
-    # Polygon areas agree with the raster cell counts and sum to the field's mapped area.
+    # The polygons tile the boundary: union equal to it within 0.1 %, no overlaps, none
+    # below the minimum mapping unit.  Source: shapely overlay semantics.
+    import shapely
+
+    boundary = gpd.read_file(out / "inputs" / "boundary" / "boundary.geojson").to_crs(zones.crs)
+    union = shapely.union_all(zones.geometry.values)
+    outline = shapely.union_all(boundary.geometry.values)
+    assert shapely.symmetric_difference(union, outline).area <= 1e-3 * outline.area
+    assert zones.geometry.area.sum() == pytest.approx(union.area, rel=1e-6)
+    assert (zones.geometry.area / 1e4 >= result.config.zones.min_mapping_unit_ha).all()
+    assert (zones["basis"] == "measured soil test").all()
+    assert set(zones["field"]) == {"Long Meadow"} and set(zones["date"]) == {"2026-10-14"}
+    # Rates never rise with class; the build-up class gets more than the maintenance class.
+    by_class = zones.groupby("class_id")["p2o5_kg_ha"]
+    assert (by_class.min().diff().dropna() <= 0).all()
+    assert (by_class.max().shift(-1).dropna() <= by_class.min().iloc[:-1] + 1e-9).all()
+    # Polygon areas are the polygons' own, and the totals sum them.
     assert zones.geometry.area.sum() / 1e4 == pytest.approx(result.totals["area_ha"], rel=1e-9)
     assert np.allclose(zones.geometry.area / 1e4, zones["area_ha"], rtol=1e-9)
-    wgs = gpd.read_file(out / "rate_zones.geojson")
+    wgs = gpd.read_file(next(out.glob("*_rate_zones.geojson")))
     assert wgs.crs.to_epsg() == 4326 and len(wgs) == len(zones)
 
 

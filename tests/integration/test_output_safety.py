@@ -232,6 +232,19 @@ def _inject(monkeypatch, writer: str) -> None:
         assert geopandas  # geopandas' to_file(engine="pyogrio") calls pyogrio.write_dataframe
     elif writer == "copy":
         monkeypatch.setattr(shutil, "copyfile", _enospc)
+    elif writer == "TASKDATA.XML":
+        monkeypatch.setattr(Path, "write_bytes", _writes_to("TASKDATA.XML", Path.write_bytes))
+    elif writer == "zones.csv":
+        import pmap.io.tables
+
+        real_tables_mkstemp = pmap.io.tables.tempfile.mkstemp
+
+        def tables_mkstemp(*args, prefix=None, **kwargs):
+            if prefix and prefix.endswith("_zones.csv."):
+                _enospc()
+            return real_tables_mkstemp(*args, prefix=prefix, **kwargs)
+
+        monkeypatch.setattr(pmap.io.tables.tempfile, "mkstemp", tables_mkstemp)
     elif writer == "summary.json":
         monkeypatch.setattr(Path, "write_text", _writes_to("summary.json", Path.write_text))
     elif writer == "manifest.json":
@@ -260,7 +273,8 @@ def field_inputs(tmp_path_factory):
 
 
 @pytest.mark.parametrize("writer", ["geotiff", "geotiff-gdal", "png", "GPKG", "GeoJSON",
-                                    "ESRI Shapefile", "copy", "summary.json", "manifest.json"])
+                                    "ESRI Shapefile", "copy", "summary.json", "manifest.json",
+                                    "TASKDATA.XML", "zones.csv"])
 def test_no_space_in_any_writer_keeps_the_old_output(old_output, demo_run, field_inputs,
                                                      monkeypatch, writer):
     from pmap.outputs import write_outputs
@@ -269,7 +283,7 @@ def test_no_space_in_any_writer_keeps_the_old_output(old_output, demo_run, field
     paths, inputs = field_inputs
     # A copy (the session's result stays untouched) with fewer layers, to write faster.
     keep = ("ph", "ph_variance", "fixation_risk", "fixation_mechanism", "fixation_class",
-            "zones", "p2o5_zone_rate")
+            "zones", "p2o5_zone_rate", "product_zone_rate")
     result = dataclasses.replace(result, out_dir=old_output,
                                  layers={name: result.layers[name] for name in keep},
                                  interpolations={"ph": result.interpolations["ph"]})

@@ -11,13 +11,19 @@ import pytest
 
 import pmap
 from pmap.demo import write_demo_inputs
-from pmap.prescribe.rates import p2o5_rate_kg_ha
+from pmap.prescribe.rates import p2o5_rate_kg_ha, product_rates
 from pmap.soil.conversions import convert_soil_test
 
 
 @pytest.fixture(scope="module")
 def demo_inputs(tmp_path_factory):
     return write_demo_inputs(tmp_path_factory.mktemp("inputs"))
+
+
+def _one(out, pattern):
+    found = sorted(out.glob(pattern))
+    assert len(found) == 1, (pattern, found)
+    return found[0]
 
 
 def _run(samples, boundary, out, config):
@@ -45,6 +51,22 @@ def test_without_soil_test_p_rates_come_from_the_flagged_model_estimate(demo_inp
     assert summary["soil_test_p_driving_rates"]["source"] == "model estimate"
     assert any("MODEL ESTIMATE" in w for w in summary["warnings"])
     assert (tmp_path / "out" / "rasters" / "stp_equivalent.tif").is_file()
+    # The model-estimate basis travels with every file that carries a rate.
+    import geopandas as gpd
+    import rasterio
+
+    out = tmp_path / "out"
+    for frame in (gpd.read_file(_one(out, "*_rate_zones.gpkg")),
+                  gpd.read_file(_one(out, "*_rate_zones.geojson"))):
+        assert set(frame["basis"]) <= {"model estimate", "not sampled"}
+        assert "model estimate" in set(frame["basis"])
+    assert "model estimate" in set(gpd.read_file(_one(out, "shapefile/*_rate_zones.shp"))["BASIS"])
+    assert "model estimate" in set(pd.read_csv(_one(out, "*_zones.csv"))["basis"])
+    for layer in ("p2o5_zone_rate", "product_zone_rate", "p2o5_rate", "zones"):
+        with rasterio.open(out / "rasters" / f"{layer}.tif") as src:
+            assert src.tags()["BASIS"] == "model estimate"
+    assert "model estimate" in (out / "TASKDATA" / "TASKDATA.XML").read_text()
+    assert summary["prescription"]["basis"] == "model estimate"
 
 
 def test_zone_rate_raster_matches_the_polygons(demo_inputs, tmp_path):
@@ -52,17 +74,26 @@ def test_zone_rate_raster_matches_the_polygons(demo_inputs, tmp_path):
 
     config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0)
     result = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out", config)
-    zones = gpd.read_file(tmp_path / "out" / "rate_zones.gpkg", layer="rate_zones")
+    zones = gpd.read_file(_one(tmp_path / "out", "*_rate_zones.gpkg"), layer="rate_zones")
     painted = result.layers["p2o5_zone_rate"]
     for _, row in zones.iterrows():
         # Every cell whose centre is in the polygon carries that polygon's rate.
         point = row.geometry.representative_point()
         r, c = result.grid.rowcol(np.array([point.x]), np.array([point.y]))
         assert painted[r[0], c[0]] == pytest.approx(row["p2o5_kg_ha"])
-    # A patch's rate is the rule applied to its mean soil-test P.
-    expected = p2o5_rate_kg_ha(zones["mean_stp_mg_kg"].to_numpy(), config.rates)
-    assert np.allclose(zones["p2o5_kg_ha"], expected)
-    shp = gpd.read_file(tmp_path / "out" / "shapefile" / "rate_zones.shp")
+    # A polygon's rate is the rule applied to its mean soil-test P, metered as product.
+    sampled = zones[zones["basis"] != "not sampled"]
+    rule = result.rule
+    expected = product_rates(p2o5_rate_kg_ha(sampled["mean_stp_mg_kg"].to_numpy(), rule), rule)
+    assert np.allclose(sampled["product_kg_ha"], expected[0], atol=0.05)
+    assert np.allclose(sampled["p2o5_kg_ha"], expected[1], atol=0.05)
+    # One rate per polygon, and the class table is the sum of its polygons.
+    for row in result.class_table:
+        mine = zones[zones["class_id"] == row["class_id"]]
+        assert row["area_ha"] == pytest.approx(mine["area_ha"].sum(), rel=1e-9)
+        assert row["p2o5_total_kg"] == pytest.approx(
+            (mine["p2o5_kg_ha"] * mine["area_ha"]).sum(), rel=1e-9)
+    shp = gpd.read_file(_one(tmp_path / "out", "shapefile/*_rate_zones.shp"))
     assert len(shp) == len(zones) and "P2O5_KGHA" in shp.columns
 
 
@@ -97,6 +128,13 @@ def test_a_rule_for_another_method_converts_the_soil_test_first(demo_inputs, tmp
     inside = result.grid.mask
     rule_stp = convert_soil_test(result.layers["stp"][inside], "bray1", "mehlich3_icp")
     assert np.allclose(result.layers["p2o5_rate"][inside], p2o5_rate_kg_ha(rule_stp, result.rule))
+    # Each polygon's rate comes from its converted mean (the conversion is linear), never from
+    # the lab's Bray-1 numbers: those would give about 30 % more P2O5 here.
+    sampled = [p for p in result.patches if p.basis != "not sampled"]
+    converted = convert_soil_test(np.array([p.mean_stp_mg_kg for p in sampled]), "bray1",
+                                  "mehlich3_icp")
+    expected = product_rates(p2o5_rate_kg_ha(converted, result.rule), result.rule)[1]
+    np.testing.assert_allclose([p.p2o5_kg_ha for p in sampled], expected, atol=0.05)
 
 
 def test_olsen_samples_need_an_olsen_rule(demo_inputs, tmp_path):
@@ -105,7 +143,7 @@ def test_olsen_samples_need_an_olsen_rule(demo_inputs, tmp_path):
     table.rename(columns={"mehlich3_p": "olsen_p"}).assign(
         olsen_p=lambda t: (t["olsen_p"] / 2).round(1)).to_csv(samples, index=False)
     config = pmap.load_config().replace("grid", cell_size_m=20.0)
-    with pytest.raises(pmap.ConfigError, match="rates.critical_ppm has no default for olsen"):
+    with pytest.raises(pmap.ConfigError, match="no published tri-state interpretation of olsen"):
         _run(samples, demo_inputs["boundary"], tmp_path / "out", config)
     with pytest.raises(pmap.ConfigError, match="does not convert Olsen"):
         _run(samples, demo_inputs["boundary"], tmp_path / "out",
@@ -146,3 +184,22 @@ def test_a_failure_while_writing_leaves_no_output_and_keeps_the_old_one(demo_inp
     assert (out / "summary.json").read_bytes() == before, "the old output was damaged"
     assert not (tmp_path / "fresh").exists(), "a half-written output was left"
     assert not list(tmp_path.glob(".*partial*")), "a staging directory was left"
+
+
+def test_cluster_zones_carry_the_users_rate_table(demo_inputs, tmp_path):
+    # Zones by fuzzy c-means of soil-test P and pH; the config's per-zone table sets the rates.
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0).replace(
+        "clusters", method="fuzzy_cmeans", layers=("stp", "ph"), n_zones=3,
+        rates_kg_ha=(120.0, 90.0, 60.0))
+    result = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out", config)
+    assert result.prescription["zones_by"] == "fuzzy_cmeans clusters"
+    assert result.prescription["clusters"]["n_zones"] == 3
+    rule = result.rule
+    for row in result.class_table:
+        wanted = product_rates(np.array([(120.0, 90.0, 60.0)[row["class_id"] - 1]]), rule)[1][0]
+        assert row["min_p2o5_kg_ha"] == row["max_p2o5_kg_ha"] == pytest.approx(wanted)
+    means = [row["mean_stp_mg_kg"] for row in result.class_table]
+    assert means == sorted(means)  # zone 1 is the poorest
+    with pytest.raises(pmap.ConfigError, match="3 zones"):
+        _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out2",
+             config.replace("clusters", n_zones=0, max_zones=3, rates_kg_ha=(100.0, 50.0)))

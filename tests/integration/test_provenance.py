@@ -97,15 +97,19 @@ def test_no_clock_times_or_temporary_names_in_files(two_runs):
     _result, out, _ = two_runs
     summary_text = (out / "summary.json").read_text(encoding="utf-8")
     assert "created_utc" not in summary_text
-    for name in ("summary.json", "manifest.json", "rate_zones.geojson"):
+    stem = "Harrow-Creek-Farm-invented-demo_Long-Meadow_2026-10-14"
+    for name in ("summary.json", "manifest.json", f"{stem}_rate_zones.geojson",
+                 f"{stem}_zones.csv", "TASKDATA/TASKDATA.XML"):
         text = (out / name).read_text(encoding="utf-8")
         assert "pmap-demo-" not in text and ".tmp" not in text, name
-    assert json.loads((out / "rate_zones.geojson").read_text())["name"] == "rate_zones"
-    with sqlite3.connect(out / "rate_zones.gpkg") as con:
+    geojson = json.loads((out / f"{stem}_rate_zones.geojson").read_text())
+    assert geojson["name"] == f"{stem}_rate_zones"
+    with sqlite3.connect(out / f"{stem}_rate_zones.gpkg") as con:
         (last_change,) = con.execute("SELECT last_change FROM gpkg_contents").fetchone()
     assert last_change == "2026-10-14T00:00:00.000Z"  # field.sampling_date of the demo
     # Source: dBASE III file header (bytes 1-3: year - 1900, month, day of the last update)
-    assert (out / "shapefile" / "rate_zones.dbf").read_bytes()[1:4] == bytes([126, 10, 14])
+    assert (out / "shapefile" / f"{stem}_rate_zones.dbf").read_bytes()[1:4] == \
+        bytes([126, 10, 14])
     # Source: PNG specification (W3C, 2nd ed.): text chunks tEXt/iTXt/zTXt, time chunk tIME
     assert _png_text_keys(out / "maps" / "ph.png") == []
     with rasterio.open(out / "rasters" / "ph.tif") as src:

@@ -24,6 +24,10 @@ NUMERIC_MODULES = [
     "pmap.soil.fixation",
     "pmap.soil.conversions",
     "pmap.prescribe",
+    "pmap.prescribe.clustering",
+    "pmap.prescribe.interpretation",
+    "pmap.prescribe.patches",
+    "pmap.prescribe.prescription",
     "pmap.prescribe.rates",
     "pmap.prescribe.zones",
 ]
