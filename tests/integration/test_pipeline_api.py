@@ -203,3 +203,48 @@ def test_cluster_zones_carry_the_users_rate_table(demo_inputs, tmp_path):
     with pytest.raises(pmap.ConfigError, match="3 zones"):
         _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out2",
              config.replace("clusters", n_zones=0, max_zones=3, rates_kg_ha=(100.0, 50.0)))
+
+
+def test_risk_aware_rule_is_labelled_and_applies_p_more_readily(demo_inputs, tmp_path):
+    # Source: definition of a quantile; at q = 0.5 the normal kriging distribution's median is
+    # the estimate, so the risk-aware rule then gives the plain rule's rates.
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0)
+    plain = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "a", config)
+    median = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "b",
+                  config.replace("rates", deficiency_probability_threshold=0.5))
+    cautious = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "c",
+                    config.replace("rates", deficiency_probability_threshold=0.2))
+    inside = plain.grid.mask
+    np.testing.assert_allclose(median.layers["p2o5_rate"][inside],
+                               plain.layers["p2o5_rate"][inside])
+    assert (cautious.layers["p2o5_rate"][inside] >= plain.layers["p2o5_rate"][inside]).all()
+    assert cautious.totals["p2o5_total_kg"] > plain.totals["p2o5_total_kg"]
+    assert "RISK-AWARE RULE" in cautious.stp_source["risk_aware_rule"]
+    assert "risk_aware_rule" not in plain.stp_source
+    assert 0 <= np.nanmin(plain.layers["stp_deficiency_probability"]) <= \
+        np.nanmax(plain.layers["stp_deficiency_probability"]) <= 1
+
+
+def test_each_feature_runs_as_its_own_field(demo_inputs, tmp_path):
+    # A boundary file with the demo field and a far-away second field: each runs on its own;
+    # the second holds no sample, fails with a message naming it, and the first is written.
+    import geopandas as gpd
+    from shapely.affinity import translate
+
+    field = gpd.read_file(demo_inputs["boundary"])
+    far = field.copy()
+    far["geometry"] = far.to_crs(32616).geometry.apply(lambda g: translate(g, 5000, 0)).to_crs(
+        field.crs)
+    both = gpd.GeoDataFrame({"name": ["Long Meadow", "Far Side"]},
+                            geometry=list(field.geometry) + list(far.geometry), crs=field.crs)
+    path = tmp_path / "farm.geojson"
+    both.to_file(path)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=25.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        results = pmap.pipeline.run_each_feature(demo_inputs["samples"], path, tmp_path / "out",
+                                                 config)
+    (name1, out1, res1), (name2, _out2, res2) = results
+    assert (name1, name2) == ("Long Meadow", "Far Side")
+    assert res1.config.field.name == "Long Meadow" and (out1 / "summary.json").is_file()
+    assert isinstance(res2, pmap.PmapError) and "none of the" in str(res2)
