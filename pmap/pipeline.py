@@ -411,12 +411,13 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     # Zones: the table's classes of the rule's soil test (or clusters of chosen layers),
     # cleaned to a boom's scale.
     covered2d = grid.fill(covered, outside=False).astype(bool)
+    rule_stp2d = grid.fill(rule_stp)
     clusters = None
     class_labels, roles = table.labels, table.roles
     if config.clusters.method == "off":
         classes = grid.fill(table.classify(rule_stp), outside=0).astype(np.uint8)
     else:
-        layers_for = {"stp": grid.fill(rule_stp), "ph": grid.fill(ph),
+        layers_for = {"stp": rule_stp2d, "ph": grid.fill(ph),
                       "fixation_risk": grid.fill(risk.index)}
         layers_for.update({name: grid.fill(estimates[name]) for name in estimates
                            if name not in ("stp", "ph")})
@@ -441,7 +442,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
         min_cells=min_cells_for_area(config.zones.min_mapping_unit_ha, grid.cell_area_ha))
     zones = np.where(covered2d, classes, np.where(grid.mask, rx.NOT_SAMPLED, 0)).astype(np.uint8)
     if clusters is not None:  # a cluster's role: the table's role at its mean soil test
-        means = zone_means(classes, grid.fill(rule_stp), clusters.n_zones)
+        means = zone_means(classes, rule_stp2d, clusters.n_zones)
         roles = tuple(table.role_of(int(c)) if c > 0 else "none"
                       for c in table.classify(means))
 
@@ -450,7 +451,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     product = rate_rules.product_label(rule)
     patches, labels = rx.prescription_patches(
         zones, class_labels, cell_area_ha=grid.cell_area_ha, stp=grid.fill(stp),
-        rule_stp=grid.fill(rule_stp),
+        rule_stp=rule_stp2d,
         rate_fn=lambda s: rate_rules.p2o5_rate_kg_ha(s, rule),
         product_fn=lambda p: rate_rules.product_rates(p, rule), product=product, grade=grade,
         basis=basis, roles=roles,
@@ -589,13 +590,14 @@ def _polygons_for(
     remap = np.zeros(len(patches) + 1, dtype=np.int32)
     for old in range(1, len(patches) + 1):
         remap[old] = new_id[final(old)]
+    relabelled = remap[labels]
+    n_cells = np.bincount(relabelled.ravel(), minlength=len(survivors) + 1)
     by_id = {p.zone_id: p for p in patches}
     records = [dataclasses.replace(by_id[old], zone_id=new_id[old],
                                    area_ha=polys[old].area / 10_000.0,
-                                   n_cells=int(sum(by_id[o].n_cells for o in by_id
-                                                   if final(o) == old)))
+                                   n_cells=int(n_cells[new_id[old]]))
                for old in survivors]
-    return {new_id[old]: polys[old] for old in survivors}, records, remap[labels]
+    return {new_id[old]: polys[old] for old in survivors}, records, relabelled
 
 
 #: Physical limits of kriged properties (their units), passed to interpolate(limits=...):

@@ -353,14 +353,10 @@ def polygon_labels(polygons: Mapping[int, BaseGeometry], grid: GridSpec) -> np.n
 def _polygonal(geom: BaseGeometry | None) -> BaseGeometry | None:
     """The polygonal part of ``geom`` as a Polygon or MultiPolygon; None if it has none."""
     import shapely
-    from shapely.geometry import MultiPolygon, Polygon
 
-    if geom is None or geom.is_empty:
-        return None
-    if isinstance(geom, (Polygon, MultiPolygon)):
-        return geom
-    parts = [g for g in getattr(geom, "geoms", []) if isinstance(g, (Polygon, MultiPolygon))]
-    parts = [p for g in parts for p in getattr(g, "geoms", [g])]
+    from pmap.io.boundary import _polygonal_parts
+
+    parts = _polygonal_parts(geom)
     if not parts:
         return None
     return parts[0] if len(parts) == 1 else shapely.MultiPolygon(parts)

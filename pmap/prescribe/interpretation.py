@@ -21,6 +21,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from pmap.errors import ConfigError
+from pmap.prescribe.zones import _check_breaks, classify
 from pmap.soil.conversions import SOIL_TEST_METHODS
 
 __all__ = [
@@ -68,14 +69,9 @@ class InterpretationTable:
     source: str
 
     def __post_init__(self) -> None:
-        breaks = tuple(float(b) for b in self.breaks)
+        breaks = _check_breaks(self.breaks, "zones.breaks")
         object.__setattr__(self, "breaks", breaks)
         object.__setattr__(self, "labels", tuple(str(x) for x in self.labels))
-        if not breaks or not all(np.isfinite(breaks)) or any(
-                a >= b for a, b in zip(breaks[:-1], breaks[1:], strict=True)):
-            raise ConfigError(f"zones.breaks must be finite and strictly increasing, got {breaks}")
-        if len(breaks) > 254:
-            raise ConfigError(f"zones.breaks allows at most 254 breaks, got {len(breaks)}")
         if len(self.labels) != len(breaks) + 1:
             raise ConfigError(
                 f"zones.labels needs {len(breaks) + 1} names (one more than the breaks), "
@@ -99,9 +95,7 @@ class InterpretationTable:
 
     def classify(self, values: ArrayLike) -> np.ndarray:
         """Class codes 1..n of soil-test P ``values`` (mg/kg); 0 where NaN."""
-        x = np.asarray(values, dtype=float)
-        codes = (np.searchsorted(np.asarray(self.breaks), x, side="right") + 1).astype(np.uint8)
-        return np.where(np.isnan(x), 0, codes).astype(np.uint8)
+        return classify(values, self.breaks)
 
     def role_of(self, class_id: int) -> str:
         """ "build-up", "maintenance" or "none" for class ``class_id`` (1-based)."""
