@@ -1,14 +1,11 @@
-"""Leave-one-out cross-validation of an ordinary kriging model.
+"""Cross-validation of an ordinary kriging model: leave-one-out and k-fold.
 
-Each sample is predicted from all the others with the same variogram (no refit).  The
-n leave-one-out systems are not solved one by one: with ``B`` the inverse of the full
-variogram-form kriging matrix ``A`` (see :mod:`pmap.geostats.kriging`), the system
-without sample ``i`` has the solution ``-B[-i, i] / B[i, i]`` (Dubrule 1983), which
-gives at once
-
-* prediction ``z_i - alpha_i / B[i, i]`` with ``alpha = B [z; 0]``,
-* kriging variance ``-1 / B[i, i]`` (the diagonal of ``A`` is ``gamma(0) = 0``),
-* Lagrange term ``-B[n, i] / B[i, i]``.
+Each sample (or each fold) is predicted from the others with the same variogram (no
+refit).  Globally the n leave-one-out systems are not solved one by one: the factorised
+system of all samples (:class:`~pmap.geostats.kriging.KrigingSystem`, the one that also
+kriges the map) gives every prediction, variance and Lagrange term at once (Dubrule 1983);
+a held-out fold uses the same identity with a block of the inverse.  With a neighbourhood
+(``neighbours=k``) each sample is kriged from its k nearest other samples, as the map is.
 """
 
 from __future__ import annotations
@@ -17,19 +14,17 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy.linalg import lu_solve
 
 from pmap.errors import ModelFitError
 from pmap.geostats.kriging import (
-    _factorise,
-    _unit_sill,
+    KrigingSystem,
     check_duplicates,
     clip_to_limits,
     lognormal_back_transform,
 )
 from pmap.geostats.variogram import VariogramModel, _check_points
 
-__all__ = ["CrossValidation", "leave_one_out", "loo_kriging"]
+__all__ = ["CrossValidation", "leave_one_out", "loo_kriging", "k_fold", "fold_labels"]
 
 
 @dataclass(frozen=True)
@@ -76,30 +71,48 @@ class CrossValidation:
 
 
 def loo_kriging(
-    coords: np.ndarray, values: np.ndarray, model: VariogramModel
+    coords: np.ndarray, values: np.ndarray, model: VariogramModel,
+    neighbours: int | None = None, radius: float | None = None, *,
+    system: KrigingSystem | None = None,
 ) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Leave-one-out ordinary kriging of every sample from the others.
+
+    Parameters
+    ----------
+    coords, values, model
+        Samples (m) and the variogram of ``values``.
+    neighbours, radius : optional
+        Krige each sample from its ``neighbours`` nearest others (within ``radius`` m).
+    system : KrigingSystem, optional
+        The global system of these samples and this model, already factorised (e.g. for
+        the map): reused instead of factorising again.
 
     Returns
     -------
     estimate, variance, lagrange : numpy.ndarray, shape (n,)
-        Prediction of each sample from the other ``n - 1``, its kriging variance (squared
-        value units, >= 0) and the Lagrange term of its system.
+        Prediction of each sample from the others, its kriging variance (squared value
+        units, >= 0) and the Lagrange term of its system.
     """
     coords, values = _check_points(coords, values)
     n = coords.shape[0]
     if n < 3:
         raise ModelFitError(f"leave-one-out cross-validation needs at least 3 samples, got {n}")
     check_duplicates(coords)
-    unit_model, scale = _unit_sill(model)
-    lu, piv = _factorise(coords, unit_model)
-    inverse = lu_solve((lu, piv), np.eye(n + 1), check_finite=False)
-    diag = np.diag(inverse)[:n]
-    alpha = inverse[:n, :n] @ values
-    estimate = values - alpha / diag
-    variance = np.maximum(-scale / diag, 0.0)
-    lagrange = -scale * inverse[n, :n] / diag
-    return estimate, variance, lagrange
+    if neighbours is not None:
+        from pmap.geostats.neighbourhood import local_leave_one_out
+
+        return local_leave_one_out(coords, values, model, neighbours, radius)
+    if system is None:
+        system = KrigingSystem.factorise(coords, values, model)
+    return system.leave_one_out()
+
+
+def fold_labels(n: int, folds: int, seed: int) -> np.ndarray:
+    """Random fold label (0..folds-1) per sample, folds as equal as possible, seeded."""
+    if int(folds) != folds or not 2 <= folds <= n:
+        raise ValueError(f"folds must be a whole number in [2, {n}], got {folds}")
+    labels = np.arange(n) % int(folds)
+    return np.random.default_rng(seed).permutation(labels)
 
 
 def _standardize(errors: np.ndarray, variances: np.ndarray) -> np.ndarray:
@@ -128,6 +141,9 @@ def leave_one_out(
     *,
     log: bool = False,
     limits: tuple[float, float] | None = None,
+    neighbours: int | None = None,
+    radius: float | None = None,
+    system: KrigingSystem | None = None,
 ) -> CrossValidation:
     """Leave-one-out cross-validation with a fixed variogram.
 
@@ -146,6 +162,9 @@ def leave_one_out(
         Physical range of the property, in its units: predictions are clipped to it
         before the errors are taken, as the map's estimates are (see
         :func:`~pmap.geostats.kriging.clip_to_limits`).
+    neighbours, radius, system
+        As in :func:`loo_kriging` (``system`` factorised on the kriged values, the logs
+        when ``log``).
 
     Returns
     -------
@@ -158,12 +177,69 @@ def leave_one_out(
         if np.any(~(values > 0)):
             raise ValueError("log cross-validation needs all values > 0 (and finite)")
         y = np.log(values)
-        y_est, y_var, mu = loo_kriging(coords, y, model)
-        estimate, variance = lognormal_back_transform(y_est, y_var, mu)
-        standardized = _standardize(y_est - y, y_var)
+        y_est, y_var, mu = loo_kriging(coords, y, model, neighbours, radius, system=system)
     else:
-        estimate, variance, _ = loo_kriging(coords, values, model)
-        standardized = _standardize(estimate - values, variance)
+        y = values
+        y_est, y_var, mu = loo_kriging(coords, values, model, neighbours, radius, system=system)
+    return _from_predictions(values, y, y_est, y_var, mu, log, limits)
+
+
+def _from_predictions(
+    values: np.ndarray, y: np.ndarray, y_est: np.ndarray, y_var: np.ndarray, mu: np.ndarray,
+    log: bool, limits: tuple[float, float] | None,
+) -> CrossValidation:
+    """Figures from predictions in the kriged units (``y``: values or their logs)."""
+    keep = np.isfinite(y_est)
+    values, y, y_est, y_var, mu = values[keep], y[keep], y_est[keep], y_var[keep], mu[keep]
+    if log:
+        estimate, variance = lognormal_back_transform(y_est, y_var, mu)
+    else:
+        estimate, variance = y_est, y_var
+    standardized = _standardize(y_est - y, y_var)
     if limits is not None:
         estimate = clip_to_limits(estimate, limits)[0]
     return _figures(estimate - values, variance, standardized)
+
+
+def k_fold(
+    coords: np.ndarray,
+    values: np.ndarray,
+    model: VariogramModel,
+    *,
+    folds: int = 10,
+    seed: int = 0,
+    log: bool = False,
+    limits: tuple[float, float] | None = None,
+    neighbours: int | None = None,
+    radius: float | None = None,
+    system: KrigingSystem | None = None,
+) -> CrossValidation:
+    """k-fold cross-validation with a fixed variogram: each fold kriged from the others.
+
+    Folds are random and as equal as possible (:func:`fold_labels`, seeded by ``seed``).
+    Other parameters and the result are as in :func:`leave_one_out`; a sample with no other
+    within ``radius`` is left out of the figures.
+    """
+    coords, values = _check_points(coords, values)
+    n = values.size
+    if n < 3:
+        raise ModelFitError(f"k-fold cross-validation needs at least 3 samples, got {n}")
+    if log and np.any(~(values > 0)):
+        raise ValueError("log cross-validation needs all values > 0 (and finite)")
+    labels = fold_labels(n, min(int(folds), n), seed)
+    y = np.log(values) if log else values
+    if neighbours is None:
+        if system is None:
+            check_duplicates(coords)
+            system = KrigingSystem.factorise(coords, y, model)
+        y_est, y_var, mu = system.held_out(labels)
+    else:
+        from pmap.geostats.neighbourhood import local_ordinary_kriging
+
+        y_est, y_var, mu = np.empty(n), np.empty(n), np.empty(n)
+        for label in range(int(labels.max()) + 1):
+            out = labels == label
+            e, v, m, _ = local_ordinary_kriging(coords[~out], y[~out], coords[out], model,
+                                                neighbours, radius)
+            y_est[out], y_var[out], mu[out] = e, v, m
+    return _from_predictions(values, y, y_est, y_var, mu, log, limits)

@@ -1,18 +1,31 @@
-"""Global ordinary kriging, plain and lognormal, solved once and applied in chunks.
+"""Ordinary kriging, plain and lognormal: global (one factorised system) or local.
 
-The system is written in variogram form (as pykrige does)::
+Global kriging solves the covariance form::
 
-    [ G  1 ] [ w  ]   [ g0 ]
-    [ 1' 0 ] [ mu ] = [ 1  ]
+    [ C  1 ] [ w  ]   [ c0 ]
+    [ 1' 0 ] [ nu ] = [ 1  ]
 
-with ``G[i, j] = gamma(|x_i - x_j|)`` (zero diagonal), ``g0[i] = gamma(|x_i - x0|)``.
-The estimate is ``w . z`` and the ordinary kriging variance ``w . g0 + mu``.  With this
-sign convention ``mu`` equals minus the Lagrange multiplier of the covariance-form system
-``C w + nu 1 = c0``.  The semivariances are divided by the sill before solving (weights
-unchanged; ``mu`` and the variance scaled back), so the system is well scaled in any
-unit.  The matrix is LU-factorised once per call and inverted from its factors; targets
-are solved in chunks of ``chunk_size`` by one matrix product each, so memory stays at
-about ``n * chunk_size`` floats.
+with ``C[i, j] = C(|x_i - x_j|)`` (the sill on the diagonal) and ``c0[i] = C(|x_i - x0|)``.
+With the Cholesky factor ``C = L L'``, ``u = C^-1 1``, ``s = 1' u``, the generalised-least-
+squares mean ``m = u' z / s`` and ``g = C^-1 (z - m 1)``, every target needs
+
+* the estimate ``m + g' c0``,
+* the kriging variance ``sill - |L^-1 c0|^2 + (1 - u' c0)^2 / s``: one triangular solve, half
+  the arithmetic of applying the inverse of the bordered matrix,
+* the Lagrange term ``mu = -nu = (1 - u' c0) / s``, which is the multiplier of the
+  variogram-form system ``[G 1; 1' 0] [w; mu] = [g0; 1]`` (``G = sill - C``) that the
+  lognormal back-transform uses.
+
+The factorisation, :class:`KrigingSystem`, is computed once per sample set and model and
+serves both the map (:meth:`KrigingSystem.predict`) and cross-validation
+(:meth:`KrigingSystem.leave_one_out`, :meth:`KrigingSystem.held_out`).  Covariances are divided
+by the sill before solving (weights unchanged; variance and ``mu`` scaled back), so the
+system is equally well scaled in any unit.  Targets are solved in blocks whose size is
+bounded so that a block holds at most about 4 million floats: memory does not grow with
+the grid beyond the output arrays.
+
+With ``neighbours=k``, :func:`ordinary_kriging` kriges each target from its k nearest
+samples instead (:mod:`pmap.geostats.neighbourhood`).
 """
 
 from __future__ import annotations
@@ -21,14 +34,15 @@ import warnings
 from dataclasses import dataclass
 
 import numpy as np
-from scipy.linalg import LinAlgWarning, lu_factor, lu_solve
-from scipy.linalg.lapack import dgecon
+from scipy.linalg import cho_solve, solve_triangular
+from scipy.linalg.lapack import dpocon, dpotrf
 from scipy.spatial.distance import cdist
 
 from pmap.errors import ModelFitError, PmapWarning
 from pmap.geostats.variogram import VariogramModel, _check_points, _semivariance_into
 
 __all__ = [
+    "KrigingSystem",
     "KrigingResult",
     "SingularSystemError",
     "ordinary_kriging",
@@ -44,6 +58,10 @@ __all__ = [
 _RCOND_SINGULAR = 1e-13
 # Reciprocal condition number below which results may lose digits: warn.
 _RCOND_WARN = 1e-10
+# Floats per (samples x targets) block of the global solve: bounds memory at ~64 MiB.
+_BLOCK_FLOATS = 4 * 2**20
+#: Distance within which samples count as one and are averaged before a local solve, m.
+MERGE_WITHIN_M = 1e-3
 
 
 class SingularSystemError(ModelFitError):
@@ -115,10 +133,10 @@ def clip_to_limits(
 
 def kriging_matrix(coords: np.ndarray, model: VariogramModel) -> np.ndarray:
     """The (n+1, n+1) variogram-form ordinary kriging matrix (zero diagonal)."""
-    coords = np.asarray(coords, dtype=float)
-    n = coords.shape[0]
+    xy = model.isotropic_coords(np.asarray(coords, dtype=float))
+    n = xy.shape[0]
     a = np.ones((n + 1, n + 1))
-    a[:n, :n] = model(cdist(coords, coords))
+    a[:n, :n] = model(cdist(xy, xy))
     np.fill_diagonal(a[:n, :n], 0.0)
     a[n, n] = 0.0
     return a
@@ -131,31 +149,176 @@ def _unit_sill(model: VariogramModel) -> tuple[VariogramModel, float]:
     the kriging variance by ``s``.
     """
     scale = model.sill if model.sill > 0 else 1.0
-    return VariogramModel(model.kind, model.nugget / scale, model.psill / scale, model.range), scale
+    return model.with_sill_scaled(1.0 / scale), scale
 
 
-def _factorise(coords: np.ndarray, model: VariogramModel) -> tuple[np.ndarray, np.ndarray]:
-    """LU factors of the kriging matrix of ``model`` (pass a unit-sill model)."""
-    a = kriging_matrix(coords, model)
-    with warnings.catch_warnings():
-        warnings.simplefilter("ignore", LinAlgWarning)
-        lu, piv = lu_factor(a, check_finite=False)
-    rcond, info = dgecon(lu, np.linalg.norm(a, 1), norm="1")
-    if info != 0 or not rcond >= _RCOND_SINGULAR:
-        raise SingularSystemError(
-            f"the kriging system is numerically singular with the {model.kind} model "
-            f"(reciprocal condition number {rcond:.1e}); a gaussian model without nugget or "
-            "samples very close together cause this: add a nugget, use another model, or "
-            "average near-coincident samples"
-        )
-    if rcond < _RCOND_WARN:
-        warnings.warn(
-            f"kriging system is ill-conditioned (reciprocal condition number {rcond:.1e}); "
-            "results may lose accuracy",
-            PmapWarning,
-            stacklevel=3,
-        )
-    return lu, piv
+def _check_targets(targets: np.ndarray) -> np.ndarray:
+    targets = np.asarray(targets, dtype=float)
+    if targets.ndim != 2 or targets.shape[1] != 2:
+        raise ValueError(f"targets must have shape (m, 2), got {targets.shape}")
+    if not np.all(np.isfinite(targets)):
+        raise ValueError("targets must be finite (no NaN or inf)")
+    return targets
+
+
+def _covariance_into(model: VariogramModel, d: np.ndarray, out: np.ndarray) -> np.ndarray:
+    """Unit-sill covariance ``1 - gamma(d)`` of ``model`` into ``out``."""
+    _semivariance_into(model, d, out)
+    np.subtract(model.sill, out, out=out)
+    return out
+
+
+@dataclass(frozen=True)
+class KrigingSystem:
+    """The factorised global ordinary-kriging system of one sample set and variogram.
+
+    Build it with :meth:`factorise`; it then kriges any targets and cross-validates
+    without factorising again.  All arrays are in the unit-sill scaling; ``scale`` is the
+    model's sill (squared value units).
+    """
+
+    xy: np.ndarray
+    values: np.ndarray
+    unit_model: VariogramModel
+    scale: float
+    chol: np.ndarray
+    u: np.ndarray
+    s: float
+    mean: float
+    g: np.ndarray
+    rcond: float
+
+    @classmethod
+    def factorise(cls, coords: np.ndarray, values: np.ndarray,
+                  model: VariogramModel) -> KrigingSystem:
+        """Cholesky-factorise the covariance matrix of ``coords`` under ``model``.
+
+        Raises
+        ------
+        ModelFitError
+            Fewer than 2 samples or duplicate coordinates.
+        SingularSystemError
+            The matrix is numerically singular (reciprocal condition < 1e-13).
+        """
+        coords, values = _check_points(coords, values)
+        n = coords.shape[0]
+        if n < 2:
+            raise ModelFitError(f"ordinary kriging needs at least 2 samples, got {n}")
+        check_duplicates(coords)
+        unit, scale = _unit_sill(model)
+        xy = unit.isotropic_coords(coords)
+        cov = _covariance_into(unit, cdist(xy, xy), np.empty((n, n)))
+        np.fill_diagonal(cov, unit.sill)
+        anorm = float(np.abs(cov).sum(axis=0).max())
+        chol, info = dpotrf(cov, lower=1, clean=1, overwrite_a=1)
+        rcond = 0.0
+        if info == 0:
+            rcond, info = dpocon(chol, anorm, uplo="L")
+        if info != 0 or not rcond >= _RCOND_SINGULAR:
+            raise SingularSystemError(
+                f"the kriging system is numerically singular with the {model.kind} model "
+                f"(reciprocal condition number {rcond:.1e}); a gaussian model without nugget or "
+                "samples very close together cause this: add a nugget, use another model, or "
+                "average near-coincident samples"
+            )
+        if rcond < _RCOND_WARN:
+            warnings.warn(
+                f"kriging system is ill-conditioned (reciprocal condition number {rcond:.1e}); "
+                "results may lose accuracy",
+                PmapWarning,
+                stacklevel=3,
+            )
+        factor = (chol, True)
+        u = cho_solve(factor, np.ones(n), check_finite=False)
+        s = float(u.sum())
+        mean = float(u @ values / s)
+        g = cho_solve(factor, values - mean, check_finite=False)
+        return cls(xy, values, unit, float(scale), chol, u, s, mean, g, float(rcond))
+
+    @property
+    def n(self) -> int:
+        """Number of samples."""
+        return int(self.values.size)
+
+    def predict(self, targets: np.ndarray, chunk_size: int = 20000) -> KrigingResult:
+        """Krige ``targets`` (m, 2) in memory-bounded blocks of at most ``chunk_size``."""
+        targets = _check_targets(targets)
+        if int(chunk_size) != chunk_size or chunk_size < 1:
+            raise ValueError(f"chunk_size must be a whole number >= 1, got {chunk_size}")
+        txy = self.unit_model.isotropic_coords(targets)
+        n, m = self.n, txy.shape[0]
+        chunk = int(max(1, min(int(chunk_size), max(256, _BLOCK_FLOATS // n))))
+        estimate = np.empty(m)
+        variance = np.empty(m)
+        lagrange = np.empty(m)
+        buf = np.empty((n, min(chunk, m)))
+        for s0 in range(0, m, chunk):
+            s1 = min(s0 + chunk, m)
+            d = cdist(self.xy, txy[s0:s1])
+            c0 = _covariance_into(self.unit_model, d, buf[:, : s1 - s0])
+            y = solve_triangular(self.chol, c0, lower=True, check_finite=False)
+            q = np.einsum("ij,ij->j", y, y)
+            t = self.u @ c0
+            est = self.mean + self.g @ c0
+            mu = (1.0 - t) / self.s
+            var = self.unit_model.sill - q + (1.0 - t) * mu
+            if not d.min() > 0:
+                hit_sample, hit_target = np.nonzero(d == 0.0)
+                est[hit_target] = self.values[hit_sample]
+                var[hit_target] = 0.0
+                mu[hit_target] = 0.0
+            estimate[s0:s1] = est
+            variance[s0:s1] = np.maximum(var, 0.0) * self.scale
+            lagrange[s0:s1] = mu * self.scale
+        return KrigingResult(estimate, variance, lagrange)
+
+    def _inverse(self) -> np.ndarray:
+        return cho_solve((self.chol, True), np.eye(self.n), check_finite=False)
+
+    def leave_one_out(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Every sample kriged from all the others, from this factorisation (Dubrule 1983).
+
+        With ``B`` the inverse of the bordered covariance matrix,
+        ``B_ii = (C^-1)_ii - u_i^2 / s``; the prediction is ``z_i - g_i / B_ii``, its
+        variance ``1 / B_ii`` and its variogram-form Lagrange term ``(u_i / s) / B_ii``.
+
+        Returns
+        -------
+        estimate, variance, lagrange : numpy.ndarray, shape (n,)
+        """
+        if self.n < 3:
+            raise ModelFitError(
+                f"leave-one-out cross-validation needs at least 3 samples, got {self.n}")
+        b = np.diag(self._inverse()) - self.u**2 / self.s
+        estimate = self.values - self.g / b
+        variance = np.maximum(self.scale / b, 0.0)
+        lagrange = self.scale * (self.u / self.s) / b
+        return estimate, variance, lagrange
+
+    def held_out(self, folds: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Each fold's samples kriged from the samples of the other folds.
+
+        ``folds`` (n,) holds a fold label per sample.  With ``B_SS`` the block of the
+        bordered inverse for fold ``S``, the predictions are ``z_S - B_SS^-1 g_S``, their
+        variances the diagonal of ``B_SS^-1`` and the Lagrange terms ``B_SS^-1 u_S / s``.
+        """
+        folds = np.asarray(folds)
+        if folds.shape != (self.n,):
+            raise ValueError(f"folds must have shape ({self.n},), got {folds.shape}")
+        inverse = self._inverse()
+        estimate = np.empty(self.n)
+        variance = np.empty(self.n)
+        lagrange = np.empty(self.n)
+        for label in np.unique(folds):
+            idx = np.flatnonzero(folds == label)
+            if idx.size >= self.n:
+                raise ModelFitError("a fold holds every sample; use at least 2 folds")
+            b = inverse[np.ix_(idx, idx)] - np.outer(self.u[idx], self.u[idx]) / self.s
+            b_inv = np.linalg.inv(b)
+            estimate[idx] = self.values[idx] - b_inv @ self.g[idx]
+            variance[idx] = np.maximum(np.diag(b_inv), 0.0) * self.scale
+            lagrange[idx] = self.scale * (b_inv @ self.u[idx]) / self.s
+        return estimate, variance, lagrange
 
 
 def _krige(
@@ -164,48 +327,31 @@ def _krige(
     targets: np.ndarray,
     model: VariogramModel,
     chunk_size: int,
+    neighbours: int | None = None,
+    radius: float | None = None,
 ) -> KrigingResult:
     coords, values = _check_points(coords, values)
-    targets = np.asarray(targets, dtype=float)
-    if targets.ndim != 2 or targets.shape[1] != 2:
-        raise ValueError(f"targets must have shape (m, 2), got {targets.shape}")
-    if not np.all(np.isfinite(targets)):
-        raise ValueError("targets must be finite (no NaN or inf)")
+    targets = _check_targets(targets)
     if int(chunk_size) != chunk_size or chunk_size < 1:
         raise ValueError(f"chunk_size must be a whole number >= 1, got {chunk_size}")
     if coords.shape[0] < 2:
         raise ModelFitError(f"ordinary kriging needs at least 2 samples, got {coords.shape[0]}")
-    check_duplicates(coords)
-    unit_model, scale = _unit_sill(model)
-    lu, piv = _factorise(coords, unit_model)
-    n, m = coords.shape[0], targets.shape[0]
-    # Explicit inverse from the LU factors: one matrix product per chunk is several
-    # times faster than a triangular solve with row pivoting on a wide right-hand side.
-    inverse = lu_solve((lu, piv), np.eye(n + 1), check_finite=False)
-    estimate = np.empty(m)
-    variance = np.empty(m)
-    lagrange = np.empty(m)
-    chunk = int(chunk_size)
-    for s in range(0, m, chunk):
-        e = min(s + chunk, m)
-        d = cdist(coords, targets[s:e])
-        rhs = np.empty((n + 1, e - s))
-        _semivariance_into(unit_model, d, rhs[:n])
-        rhs[n] = 1.0
-        sol = inverse @ rhs
-        w, mu = sol[:n], sol[n]
-        est = values @ w
-        mu *= scale
-        var = scale * np.einsum("ij,ij->j", w, rhs[:n]) + mu
-        if not d.min() > 0:
-            hit_sample, hit_target = np.nonzero(d == 0.0)
-            est[hit_target] = values[hit_sample]
-            var[hit_target] = 0.0
-            mu[hit_target] = 0.0
-        estimate[s:e] = est
-        variance[s:e] = np.maximum(var, 0.0)
-        lagrange[s:e] = mu
-    return KrigingResult(estimate, variance, lagrange)
+    if neighbours is None:
+        if radius is not None:
+            raise ValueError("radius needs neighbours: give the number of nearest samples too")
+        return KrigingSystem.factorise(coords, values, model).predict(targets, chunk_size)
+    from pmap.geostats.neighbourhood import local_ordinary_kriging, merge_close_samples
+
+    coords, values, merged = merge_close_samples(coords, values, MERGE_WITHIN_M)
+    if merged:
+        warnings.warn(
+            f"{merged} sample(s) lay within {MERGE_WITHIN_M * 1000:g} mm of another and were "
+            "averaged with it before kriging (a local system with two such samples is singular)",
+            PmapWarning,
+            stacklevel=3,
+        )
+    est, var, mu, _ = local_ordinary_kriging(coords, values, targets, model, neighbours, radius)
+    return KrigingResult(est, var, mu)
 
 
 def ordinary_kriging(
@@ -213,10 +359,12 @@ def ordinary_kriging(
     values: np.ndarray,
     targets: np.ndarray,
     model: VariogramModel,
+    neighbours: int | None = None,
+    radius: float | None = None,
     *,
     chunk_size: int = 20000,
 ) -> KrigingResult:
-    """Global ordinary kriging of ``values`` at ``targets``.
+    """Ordinary kriging of ``values`` at ``targets``, global or from nearest neighbours.
 
     Parameters
     ----------
@@ -227,9 +375,16 @@ def ordinary_kriging(
     targets : numpy.ndarray, shape (m, 2)
         Prediction points, m.
     model : VariogramModel
-        Variogram of ``values``.
+        Variogram of ``values`` (anisotropic models are honoured).
+    neighbours : int, optional
+        Krige each target from its ``neighbours`` nearest samples (local kriging); samples
+        within 1 mm of each other are averaged first, with a warning.  ``None``: global.
+    radius : float, optional
+        With ``neighbours``: only samples within ``radius`` m are used, and a target with
+        none gets NaN (nodata), not a guess.
     chunk_size : int
-        Targets solved per block; memory grows with ``n * chunk_size``.
+        Most targets solved per block of the global solve (blocks are also capped at about
+        4 million floats).
 
     Returns
     -------
@@ -245,7 +400,7 @@ def ordinary_kriging(
         Duplicate sample coordinates, or a numerically singular system
         (:class:`SingularSystemError`).
     """
-    return _krige(coords, values, targets, model, chunk_size)
+    return _krige(coords, values, targets, model, chunk_size, neighbours, radius)
 
 
 def lognormal_back_transform(
@@ -296,6 +451,8 @@ def lognormal_ordinary_kriging(
     values: np.ndarray,
     targets: np.ndarray,
     model_log: VariogramModel,
+    neighbours: int | None = None,
+    radius: float | None = None,
     *,
     chunk_size: int = 20000,
 ) -> KrigingResult:
@@ -309,6 +466,8 @@ def lognormal_ordinary_kriging(
         Sample values, all > 0.
     model_log : VariogramModel
         Variogram fitted to ``log(values)``, squared log units.
+    neighbours, radius : optional
+        Local kriging, as in :func:`ordinary_kriging`.
     chunk_size : int
         Targets solved per block.
 
@@ -323,7 +482,8 @@ def lognormal_ordinary_kriging(
     values = np.asarray(values, dtype=float)
     if np.any(~(values > 0)):
         raise ValueError("lognormal kriging needs all values > 0 (and finite)")
-    log_result = _krige(coords, np.log(values), targets, model_log, chunk_size)
+    log_result = _krige(coords, np.log(values), targets, model_log, chunk_size, neighbours,
+                        radius)
     estimate, variance = lognormal_back_transform(
         log_result.estimate, log_result.variance, log_result.lagrange
     )

@@ -1,0 +1,276 @@
+"""Compiled kernel of neighbourhood kriging (numba), used by :mod:`pmap.geostats.neighbourhood`.
+
+The same covariance-form algebra as the pure-numpy path of that module, per target:
+k nearest samples by a search over square buckets of samples (rings of buckets until no
+unsearched bucket can hold a nearer sample), the neighbour set sorted, looked up among the
+last few sets factorised in this block (targets arrive in Z-order, so neighbouring targets
+follow each other and mostly share their set), a Cholesky factorisation on a miss, then
+one triangular solve.  Blocks of targets run in parallel threads.
+
+Compiled on first use and cached on disk (``cache=True``); see docs/geostatistics.md for
+the measured compile cost.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numba import njit, prange
+
+#: Model kinds the kernel evaluates itself (others use the numpy path).
+KIND_CODES = {"spherical": 0, "exponential": 1, "gaussian": 2, "stable": 3}
+_CACHE = 32
+_RCOND = 1e-12
+
+
+@njit(cache=True, inline="always")
+def _cov(h: float, kind: int, nug: float, ps: float, rng: float, shape: float) -> float:
+    """Unit-sill covariance 1 - gamma(h), with gamma(0) = 0."""
+    if h <= 0.0:
+        return 1.0
+    r = h / rng
+    if kind == 0:
+        st = 1.0 if r >= 1.0 else r * (1.5 - 0.5 * r * r)
+    elif kind == 1:
+        st = 1.0 - np.exp(-3.0 * r)
+    elif kind == 2:
+        st = 1.0 - np.exp(-3.0 * r * r)
+    else:
+        st = 1.0 - np.exp(-3.0 * r**shape)
+    return 1.0 - (nug + ps * st)
+
+
+@njit(cache=True)
+def _knn(tx, ty, self_index, xy, bstart, border, b0x, b0y, bsize, nbx, nby, k, radius2,
+         best_d, best_i):
+    """The k nearest samples of (tx, ty) within the radius; returns how many were found."""
+    bx = int((tx - b0x) / bsize)
+    by = int((ty - b0y) / bsize)
+    bx = min(max(bx, 0), nbx - 1)
+    by = min(max(by, 0), nby - 1)
+    cnt = 0
+    r = 0
+    while True:
+        x_lo = bx - r
+        x_hi = bx + r
+        y_lo = by - r
+        y_hi = by + r
+        for yy in range(max(y_lo, 0), min(y_hi, nby - 1) + 1):
+            on_edge_y = yy == y_lo or yy == y_hi
+            xx = max(x_lo, 0)
+            x_end = min(x_hi, nbx - 1)
+            while xx <= x_end:
+                if on_edge_y or xx == x_lo or xx == x_hi:
+                    b = yy * nbx + xx
+                    for p in range(bstart[b], bstart[b + 1]):
+                        j = border[p]
+                        if j == self_index:
+                            continue
+                        dx = xy[j, 0] - tx
+                        dy = xy[j, 1] - ty
+                        d2 = dx * dx + dy * dy
+                        if d2 > radius2:
+                            continue
+                        if cnt < k:
+                            pos = cnt
+                            cnt += 1
+                        elif d2 < best_d[k - 1]:
+                            pos = k - 1
+                        else:
+                            continue
+                        while pos > 0 and best_d[pos - 1] > d2:
+                            best_d[pos] = best_d[pos - 1]
+                            best_i[pos] = best_i[pos - 1]
+                            pos -= 1
+                        best_d[pos] = d2
+                        best_i[pos] = j
+                    xx += 1
+                else:
+                    xx = x_hi if x_hi <= x_end else x_end + 1
+        # Distance from the target to the nearest bucket not yet searched.
+        gap = np.inf
+        if x_lo > 0:
+            gap = min(gap, tx - (b0x + x_lo * bsize))
+        if x_hi < nbx - 1:
+            gap = min(gap, b0x + (x_hi + 1) * bsize - tx)
+        if y_lo > 0:
+            gap = min(gap, ty - (b0y + y_lo * bsize))
+        if y_hi < nby - 1:
+            gap = min(gap, b0y + (y_hi + 1) * bsize - ty)
+        if gap == np.inf:
+            break
+        gap = max(gap, 0.0)
+        if gap * gap > radius2:
+            break
+        if cnt == k and gap * gap >= best_d[k - 1]:
+            break
+        r += 1
+    return cnt
+
+
+@njit(cache=True)
+def _factorise(xy, z, members, kk, kind, nug, ps, rng, shape, L, u, g):
+    """Cholesky of the set's covariance matrix into L; u = C^-1 1, g = C^-1 (z - m 1).
+
+    Returns (s, mean, regularised).
+    """
+    jitter = 0.0
+    regularised = False
+    while True:
+        ok = True
+        for i in range(kk):
+            xi = xy[members[i], 0]
+            yi = xy[members[i], 1]
+            for j in range(i + 1):
+                if i == j:
+                    c = 1.0 + jitter
+                else:
+                    dx = xy[members[j], 0] - xi
+                    dy = xy[members[j], 1] - yi
+                    c = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
+                acc = c
+                for p in range(j):
+                    acc -= L[i, p] * L[j, p]
+                if i == j:
+                    if acc < _RCOND:
+                        ok = False
+                        break
+                    L[i, i] = np.sqrt(acc)
+                else:
+                    L[i, j] = acc / L[j, j]
+            if not ok:
+                break
+        if ok:
+            break
+        regularised = True
+        jitter = 1e-10 if jitter == 0.0 else jitter * 100.0
+    # u = C^-1 1 and C^-1 z by two triangular solves each.
+    w = np.empty(kk)
+    v = np.empty(kk)
+    for i in range(kk):
+        a = 1.0
+        b = z[members[i]]
+        for p in range(i):
+            a -= L[i, p] * w[p]
+            b -= L[i, p] * v[p]
+        w[i] = a / L[i, i]
+        v[i] = b / L[i, i]
+    for i in range(kk - 1, -1, -1):
+        a = w[i]
+        b = v[i]
+        for p in range(i + 1, kk):
+            a -= L[p, i] * u[p]
+            b -= L[p, i] * g[p]
+        u[i] = a / L[i, i]
+        g[i] = b / L[i, i]
+    s = 0.0
+    uz = 0.0
+    for i in range(kk):
+        s += u[i]
+        uz += u[i] * z[members[i]]
+    mean = uz / s
+    for i in range(kk):
+        g[i] -= mean * u[i]                 # C^-1 (z - m 1) = C^-1 z - m u
+    return s, mean, regularised
+
+
+@njit(cache=True, parallel=True)
+def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize, nbx, nby,
+                  kind, nug, ps, rng, shape, k, radius2, block, est, var, mu, counts):
+    """Krige ``txy[order]`` in blocks; write unit-sill results at the original positions.
+
+    ``self_index[t]`` is the sample to leave out for target ``t`` (-1 for none).
+    ``counts`` (n_blocks, 3) receives per block: sets factorised, regularised, empty.
+    """
+    m = order.size
+    n_blocks = (m + block - 1) // block
+    for bi in prange(n_blocks):
+        cache_sets = np.full((_CACHE, k), -1, dtype=np.int64)
+        cache_kk = np.zeros(_CACHE, dtype=np.int64)
+        cache_L = np.zeros((_CACHE, k, k))
+        cache_u = np.zeros((_CACHE, k))
+        cache_g = np.zeros((_CACHE, k))
+        cache_s = np.zeros(_CACHE)
+        cache_mean = np.zeros(_CACHE)
+        next_slot = 0
+        best_d = np.empty(k)
+        best_i = np.empty(k, dtype=np.int64)
+        members = np.empty(k, dtype=np.int64)
+        c0 = np.empty(k)
+        y = np.empty(k)
+        n_sets = 0
+        n_reg = 0
+        n_empty = 0
+        for q in range(bi * block, min((bi + 1) * block, m)):
+            t = order[q]
+            tx = txy[t, 0]
+            ty = txy[t, 1]
+            kk = _knn(tx, ty, self_index[t], xy, bstart, border, b0x, b0y, bsize, nbx, nby, k,
+                      radius2, best_d, best_i)
+            if kk == 0:
+                est[t] = np.nan
+                var[t] = np.nan
+                mu[t] = np.nan
+                n_empty += 1
+                continue
+            if best_d[0] == 0.0:
+                est[t] = z[best_i[0]]
+                var[t] = 0.0
+                mu[t] = 0.0
+                continue
+            for i in range(kk):
+                members[i] = best_i[i]
+            for i in range(1, kk):                      # insertion sort of the indices
+                v = members[i]
+                p = i
+                while p > 0 and members[p - 1] > v:
+                    members[p] = members[p - 1]
+                    p -= 1
+                members[p] = v
+            slot = -1
+            for c in range(_CACHE):
+                if cache_kk[c] == kk:
+                    same = True
+                    for i in range(kk):
+                        if cache_sets[c, i] != members[i]:
+                            same = False
+                            break
+                    if same:
+                        slot = c
+                        break
+            if slot < 0:
+                slot = next_slot
+                next_slot = (next_slot + 1) % _CACHE
+                s_, mean_, reg = _factorise(xy, z, members, kk, kind, nug, ps, rng, shape,
+                                            cache_L[slot], cache_u[slot], cache_g[slot])
+                cache_s[slot] = s_
+                cache_mean[slot] = mean_
+                cache_kk[slot] = kk
+                for i in range(kk):
+                    cache_sets[slot, i] = members[i]
+                n_sets += 1
+                if reg:
+                    n_reg += 1
+            L = cache_L[slot]
+            qq = 0.0
+            tt = 0.0
+            e = cache_mean[slot]
+            for i in range(kk):
+                j = cache_sets[slot, i]
+                dx = xy[j, 0] - tx
+                dy = xy[j, 1] - ty
+                c0[i] = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
+                acc = c0[i]
+                for p in range(i):
+                    acc -= L[i, p] * y[p]
+                y[i] = acc / L[i, i]
+                qq += y[i] * y[i]
+                tt += cache_u[slot, i] * c0[i]
+                e += cache_g[slot, i] * c0[i]
+            s_ = cache_s[slot]
+            est[t] = e
+            mu[t] = (1.0 - tt) / s_
+            vv = 1.0 - qq + (1.0 - tt) * (1.0 - tt) / s_
+            var[t] = vv if vv > 0.0 else 0.0
+        counts[bi, 0] = n_sets
+        counts[bi, 1] = n_reg
+        counts[bi, 2] = n_empty

@@ -1,0 +1,439 @@
+"""Ordinary kriging from each target's nearest samples: the engine for dense data.
+
+Each target is kriged from its ``k`` nearest samples (within a search radius, if one is
+given), in covariance form::
+
+    [ C  f ] [ w  ]   [ c0 ]
+    [ f' 0 ] [ nu ] = [ 1  ]
+
+With ``C = L L'`` (Cholesky), ``u = C^-1 f`` and ``s = f' u``, the solution needs per
+target only
+
+* the estimate ``m + c0' g`` with the local mean ``m = u' z / s`` and ``g = C^-1 (z - m f)``,
+* the variance ``sill - |L^-1 c0|^2 + (1 - u' c0)^2 / s``,
+* the Lagrange term ``mu = -nu = (1 - u' c0) / s`` (the variogram-form sign of
+  :mod:`pmap.geostats.kriging`),
+
+where ``L``, ``u``, ``s``, ``m`` and ``g`` depend only on the neighbour set.  On a grid,
+neighbouring cells mostly share their set (about five cells per set with 10^4 samples
+onto 10^6 cells), so each distinct set is factorised once: the sets of a block of targets
+are found by hashing their sorted sample indices, factorised by one batched Cholesky, and
+every target then costs one triangular solve of size ``k``, vectorised across the block.
+Targets with fewer than ``k`` samples in the radius use the ones they have (the missing
+slots are padded with decoupled dummies of weight 0); targets with none get NaN.
+
+Memory is bounded by the block size: peak use does not grow with the number of targets
+beyond the three output arrays.
+"""
+
+from __future__ import annotations
+
+import os
+import warnings
+from dataclasses import dataclass
+
+import numpy as np
+from scipy.sparse import coo_matrix
+from scipy.sparse.csgraph import connected_components
+from scipy.spatial import cKDTree
+
+from pmap.errors import ModelFitError, PmapWarning
+from pmap.geostats.variogram import VariogramModel, _check_points, _semivariance_into
+
+__all__ = [
+    "ENGINES",
+    "numba_available",
+    "LocalSystems",
+    "merge_close_samples",
+    "local_ordinary_kriging",
+    "local_leave_one_out",
+    "DEFAULT_BLOCK",
+]
+
+#: Targets handled per block: bounds memory at roughly ``DEFAULT_BLOCK * k^2`` floats.
+DEFAULT_BLOCK = 32768
+# Reciprocal condition estimate, (min diag L / max diag L)^2, below which a local system is
+# regularised (a relative jitter on its diagonal) and counted in a warning.
+_RCOND_LOCAL = 1e-12
+#: Implementations of the local solve.
+ENGINES: tuple[str, ...] = ("auto", "numba", "numpy")
+# Model kinds the compiled kernel evaluates (the matern needs scipy's Bessel function).
+_NUMBA_KINDS = ("spherical", "exponential", "gaussian", "stable")
+# Targets per parallel block of the compiled kernel.
+_NUMBA_BLOCK = 2048
+# Multipliers of the set hash (odd 64-bit integers; fixed so runs are reproducible).
+_HASH = np.random.default_rng(20261202).integers(1, 2**63 - 1, size=512, dtype=np.uint64) | 1
+
+
+@dataclass(frozen=True)
+class LocalSystems:
+    """Counts of what the neighbourhood solve met, for the record.
+
+    Attributes
+    ----------
+    targets : int
+        Targets kriged.
+    distinct_sets : int
+        Neighbour sets factorised (summed over blocks).
+    regularised : int
+        Local systems that were ill-conditioned and got a diagonal jitter.
+    no_neighbours : int
+        Targets with no sample within the radius (left NaN).
+    """
+
+    targets: int
+    distinct_sets: int
+    regularised: int
+    no_neighbours: int
+
+
+def merge_close_samples(
+    coords: np.ndarray, values: np.ndarray, within_m: float
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """Average samples that lie within ``within_m`` of each other (chained), m.
+
+    Returns
+    -------
+    coords, values : numpy.ndarray
+        One point per group: the mean position and mean value.
+    n_merged : int
+        Samples removed by merging (input count minus output count).
+    """
+    coords, values = _check_points(coords, values)
+    tree = cKDTree(coords)
+    pairs = tree.query_pairs(float(within_m), output_type="ndarray")
+    if pairs.size == 0:
+        return coords, values, 0
+    n = coords.shape[0]
+    graph = coo_matrix((np.ones(len(pairs)), (pairs[:, 0], pairs[:, 1])), shape=(n, n))
+    k, label = connected_components(graph, directed=False)
+    counts = np.bincount(label, minlength=k)
+    merged_xy = np.column_stack([np.bincount(label, weights=coords[:, j], minlength=k)
+                                 for j in range(2)]) / counts[:, None]
+    merged_z = np.bincount(label, weights=values, minlength=k) / counts
+    return merged_xy, merged_z, int(n - k)
+
+
+def _set_hash(idx_sorted: np.ndarray) -> np.ndarray:
+    """A 64-bit hash of each row of sorted sample indices (wrapping arithmetic)."""
+    k = idx_sorted.shape[1]
+    with np.errstate(over="ignore"):
+        return (idx_sorted.astype(np.uint64) * _HASH[:k]).sum(axis=1, dtype=np.uint64)
+
+
+def _factorise_sets(
+    xy: np.ndarray, z: np.ndarray, sets: np.ndarray, model: VariogramModel
+) -> tuple[np.ndarray, ...]:
+    """Cholesky factor and solve vectors of each neighbour set (unit-sill model).
+
+    ``sets`` holds sample indices per row; index ``n`` (= len(z)) marks an empty slot.
+    Returns ``chol (B, k, k)``, ``u (B, k)``, ``s (B,)``, ``mean (B,)``, ``g (B, k)``,
+    ``real (B, k)`` and the number of regularised sets.
+    """
+    n = z.size
+    real = sets < n
+    safe = np.where(real, sets, 0)
+    p = xy[safe]                                            # (B, k, 2)
+    diff = p[:, :, None, :] - p[:, None, :, :]
+    h = np.sqrt(np.einsum("bijc,bijc->bij", diff, diff))
+    cov = np.empty_like(h)
+    _semivariance_into(model, h, cov)
+    np.subtract(1.0, cov, out=cov)                          # unit sill: C = 1 - gamma
+    pair_real = real[:, :, None] & real[:, None, :]
+    cov[~pair_real] = 0.0
+    k = sets.shape[1]
+    eye = np.eye(k, dtype=bool)
+    cov[:, eye] = 1.0                                       # dummies decoupled, C = 1
+    regularised = 0
+    try:
+        chol = np.linalg.cholesky(cov)
+        diag = np.diagonal(chol, axis1=1, axis2=2)
+        bad = (diag.min(axis=1) / diag.max(axis=1)) ** 2 < _RCOND_LOCAL
+    except np.linalg.LinAlgError:
+        chol = None
+        bad = np.linalg.eigvalsh(cov)[:, 0] < _RCOND_LOCAL
+    if np.any(bad):
+        regularised = int(bad.sum())
+        low = np.minimum(np.linalg.eigvalsh(cov[bad])[:, 0], 0.0)
+        jitter = (-low + 1e-10)[:, None] * np.ones(k)
+        fixed = cov[bad]
+        fixed[:, eye] += jitter
+        cov[bad] = fixed
+        chol = np.linalg.cholesky(cov)
+    f = real.astype(float)
+    u = _cho_solve_batch(chol, f)
+    s = np.einsum("bk,bk->b", f, u)
+    zz = np.where(real, z[safe], 0.0)
+    mean = np.einsum("bk,bk->b", u, zz) / s
+    g = _cho_solve_batch(chol, zz - mean[:, None] * f)
+    return chol, u, s, mean, g, real, regularised
+
+
+def _forward(chol: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """Solve ``L y = rhs`` for a stack of lower-triangular ``L (B, k, k)``, ``rhs (B, k)``."""
+    k = rhs.shape[1]
+    y = np.empty_like(rhs)
+    for i in range(k):
+        acc = rhs[:, i] - np.einsum("bj,bj->b", chol[:, i, :i], y[:, :i]) if i else rhs[:, i]
+        y[:, i] = acc / chol[:, i, i]
+    return y
+
+
+def _backward(chol: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    """Solve ``L' x = rhs`` for a stack of lower-triangular ``L``."""
+    k = rhs.shape[1]
+    x = np.empty_like(rhs)
+    for i in range(k - 1, -1, -1):
+        acc = rhs[:, i] - np.einsum("bj,bj->b", chol[:, i + 1:, i], x[:, i + 1:])
+        x[:, i] = acc / chol[:, i, i]
+    return x
+
+
+def _cho_solve_batch(chol: np.ndarray, rhs: np.ndarray) -> np.ndarray:
+    return _backward(chol, _forward(chol, rhs))
+
+
+def _check_neighbourhood(neighbours: int, radius: float | None) -> None:
+    if isinstance(neighbours, bool) or int(neighbours) != neighbours or neighbours < 1:
+        raise ValueError(f"neighbours must be a whole number >= 1, got {neighbours!r}")
+    if radius is not None and not (np.isfinite(radius) and radius > 0):
+        raise ValueError(f"radius must be a positive distance in m, got {radius!r}")
+
+
+def local_ordinary_kriging(
+    coords: np.ndarray,
+    values: np.ndarray,
+    targets: np.ndarray,
+    model: VariogramModel,
+    neighbours: int,
+    radius: float | None = None,
+    *,
+    block: int = DEFAULT_BLOCK,
+    exclude_self: bool = False,
+    engine: str = "auto",
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, LocalSystems]:
+    """Ordinary kriging of each target from its ``neighbours`` nearest samples.
+
+    Parameters
+    ----------
+    coords : numpy.ndarray, shape (n, 2)
+        Sample coordinates, m; no two alike (merge them first, see
+        :func:`merge_close_samples`).
+    values : numpy.ndarray, shape (n,)
+        Sample values.
+    targets : numpy.ndarray, shape (m, 2)
+        Prediction points, m.
+    model : VariogramModel
+        Variogram of ``values``; an anisotropic model searches and weighs in its
+        isotropic coordinates (``radius`` is then a distance along the major axis).
+    neighbours : int
+        Samples per target (all of them if ``n`` is smaller).
+    radius : float, optional
+        Search radius, m: samples farther away are not used; a target with none gets NaN.
+    block : int
+        Targets per block; bounds memory.
+    exclude_self : bool
+        Targets are the samples themselves (``targets is coords``): each is kriged from
+        its neighbours other than itself (leave-one-out).
+    engine : {"auto", "numba", "numpy"}
+        "numba" runs the compiled kernel (:mod:`pmap.geostats._local_numba`), "numpy" the
+        pure-numpy path; "auto" takes numba when it is installed and the model kind is one
+        it evaluates (not matern), unless the environment variable ``PMAP_NUMPY_ONLY`` is
+        set.  Both give the same numbers to round-off.
+
+    Returns
+    -------
+    estimate, variance, lagrange : numpy.ndarray, shape (m,)
+        Value units, squared value units (>= 0), and the variogram-form Lagrange term;
+        NaN where no sample lies within the radius.
+    stats : LocalSystems
+    """
+    coords, values = _check_points(coords, values)
+    targets = np.asarray(targets, dtype=float)
+    if targets.ndim != 2 or targets.shape[1] != 2 or not np.all(np.isfinite(targets)):
+        raise ValueError(f"targets must be a finite (m, 2) array, got shape {targets.shape}")
+    _check_neighbourhood(neighbours, radius)
+    if engine not in ENGINES:
+        raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
+    n, m = coords.shape[0], targets.shape[0]
+    if n < 2:
+        raise ModelFitError(f"ordinary kriging needs at least 2 samples, got {n}")
+    k = int(min(neighbours, n - 1 if exclude_self else n))
+    scale = model.sill if model.sill > 0 else 1.0
+    unit = model.with_sill_scaled(1.0 / scale)
+    xy = unit.isotropic_coords(coords)
+    txy = unit.isotropic_coords(targets)
+    if _use_numba(engine, unit.kind):
+        return _numba_path(xy, values, txy, unit, scale, k, radius, exclude_self)
+    tree = cKDTree(xy)
+    bound = np.inf if radius is None else float(radius) * (1.0 + 1e-12)
+    estimate = np.full(m, np.nan)
+    variance = np.full(m, np.nan)
+    lagrange = np.full(m, np.nan)
+    n_sets = regularised = empty = 0
+    step = max(1, int(block))
+    for s0 in range(0, m, step):
+        s1 = min(s0 + step, m)
+        kk = k + 1 if exclude_self else k
+        dist, idx = tree.query(txy[s0:s1], k=kk, distance_upper_bound=bound, workers=-1)
+        dist = dist.reshape(s1 - s0, kk)
+        idx = idx.reshape(s1 - s0, kk)
+        if exclude_self:
+            own = np.arange(s0, s1)[:, None]
+            drop = idx == own
+            # Drop the target's own index; if it was not found, drop the farthest slot.
+            drop[~drop.any(axis=1), -1] = True
+            idx = idx[~drop].reshape(s1 - s0, k)
+        idx.sort(axis=1)
+        has = idx[:, 0] < n
+        empty += int((~has).sum())
+        rows = np.flatnonzero(has)
+        if rows.size == 0:
+            continue
+        idx = idx[rows]
+        keys, first, inverse = np.unique(_set_hash(idx), return_index=True, return_inverse=True)
+        sets = idx[first]
+        if not np.array_equal(sets[inverse], idx):          # hash collision: no sharing
+            sets, inverse = idx, np.arange(idx.shape[0])
+        n_sets += sets.shape[0]
+        chol, u, ssum, mean, g, real, reg = _factorise_sets(xy, values, sets, unit)
+        regularised += reg
+        del keys
+        # Per target: covariances to its set, one triangular solve.
+        p = xy[np.where(real, sets, 0)][inverse]             # (T, k, 2)
+        d = np.hypot(p[:, :, 0] - txy[s0 + rows, 0, None], p[:, :, 1] - txy[s0 + rows, 1, None])
+        c0 = np.empty_like(d)
+        _semivariance_into(unit, d, c0)
+        np.subtract(1.0, c0, out=c0)
+        dummy = ~real[inverse]
+        c0[dummy] = 0.0
+        d[dummy] = np.inf
+        y = _forward(chol[inverse], c0)
+        q = np.einsum("tk,tk->t", y, y)
+        t = np.einsum("tk,tk->t", u[inverse], c0)
+        ss = ssum[inverse]
+        est = mean[inverse] + np.einsum("tk,tk->t", g[inverse], c0)
+        mu = (1.0 - t) / ss
+        var = 1.0 - q + (1.0 - t) ** 2 / ss
+        hit = d.min(axis=1) == 0.0
+        if np.any(hit):
+            j = np.argmin(d[hit], axis=1)
+            est[hit] = values[idx[hit, j]]
+            var[hit] = 0.0
+            mu[hit] = 0.0
+        at = s0 + rows
+        estimate[at] = est
+        variance[at] = np.maximum(var, 0.0) * scale
+        lagrange[at] = mu * scale
+    if regularised:
+        _warn_regularised(regularised)
+    return estimate, variance, lagrange, LocalSystems(m, n_sets, regularised, empty)
+
+
+def numba_available() -> bool:
+    """Whether the compiled kernel can run (numba importable)."""
+    try:
+        import numba  # noqa: F401
+    except ImportError:
+        return False
+    return True
+
+
+def _use_numba(engine: str, kind: str) -> bool:
+    if engine == "numpy":
+        return False
+    supported = kind in _NUMBA_KINDS
+    if engine == "numba":
+        if not numba_available():
+            raise ImportError("engine='numba' needs the numba package (pip install numba)")
+        if not supported:
+            raise ValueError(f"the numba engine does not evaluate {kind!r} models; use 'numpy'")
+        return True
+    return supported and numba_available() and not os.environ.get("PMAP_NUMPY_ONLY")
+
+
+def _buckets(xy: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray, float, float, float, int, int]:
+    """Square buckets of about k/2 samples: order of samples by bucket and bucket offsets."""
+    lo = xy.min(axis=0)
+    span = np.maximum(xy.max(axis=0) - lo, 0.0)
+    n = xy.shape[0]
+    area = float(span[0] * span[1])
+    size = float(np.sqrt(area * max(k, 2) / (2.0 * n))) if area > 0 else 0.0
+    size = max(size, float(span.max()) / max(np.sqrt(n), 1.0), 1e-9)
+    nbx = int(span[0] // size) + 1
+    nby = int(span[1] // size) + 1
+    bx = np.minimum(((xy[:, 0] - lo[0]) // size).astype(np.int64), nbx - 1)
+    by = np.minimum(((xy[:, 1] - lo[1]) // size).astype(np.int64), nby - 1)
+    bucket = by * nbx + bx
+    border = np.argsort(bucket, kind="stable").astype(np.int64)
+    bstart = np.zeros(nbx * nby + 1, dtype=np.int64)
+    np.cumsum(np.bincount(bucket, minlength=nbx * nby), out=bstart[1:])
+    return border, bstart, float(lo[0]), float(lo[1]), size, nbx, nby
+
+
+def _z_order(txy: np.ndarray, cell: float) -> np.ndarray:
+    """Order of the targets along a Z-order (Morton) curve at resolution ``cell`` (m)."""
+    q = np.floor((txy - txy.min(axis=0)) / cell).astype(np.uint64)
+    q = np.minimum(q, np.uint64(2**21 - 1))
+    key = np.zeros(txy.shape[0], dtype=np.uint64)
+    for bit in range(21):
+        one = np.uint64(1) << np.uint64(bit)
+        key |= ((q[:, 0] & one) << np.uint64(bit)) | ((q[:, 1] & one) << np.uint64(bit + 1))
+    return np.argsort(key, kind="stable").astype(np.int64)
+
+
+def _numba_path(
+    xy: np.ndarray, values: np.ndarray, txy: np.ndarray, unit: VariogramModel, scale: float,
+    k: int, radius: float | None, exclude_self: bool,
+) -> tuple[np.ndarray, np.ndarray, np.ndarray, LocalSystems]:
+    from pmap.geostats import _local_numba as kernel
+
+    border, bstart, b0x, b0y, size, nbx, nby = _buckets(xy, k)
+    m = txy.shape[0]
+    span = np.ptp(txy, axis=0)
+    spacing = float(np.sqrt(max(span[0] * span[1], 1e-18) / m)) if m > 1 else size
+    order = _z_order(txy, max(min(spacing, size), size * 1e-6))
+    self_index = np.arange(m, dtype=np.int64) if exclude_self else np.full(m, -1, dtype=np.int64)
+    radius2 = np.inf if radius is None else (float(radius) * (1.0 + 1e-12)) ** 2
+    est = np.empty(m)
+    var = np.empty(m)
+    mu = np.empty(m)
+    counts = np.zeros(((m + _NUMBA_BLOCK - 1) // _NUMBA_BLOCK, 3), dtype=np.int64)
+    shape = 0.0 if unit.shape is None else float(unit.shape)
+    kernel.krige_targets(
+        xy, values, txy, order, self_index, bstart, border, b0x, b0y, size, nbx, nby,
+        kernel.KIND_CODES[unit.kind], float(unit.nugget), float(unit.psill), float(unit.range),
+        shape, int(k), float(radius2), _NUMBA_BLOCK, est, var, mu, counts,
+    )
+    n_sets, regularised, empty = (int(v) for v in counts.sum(axis=0))
+    if regularised:
+        _warn_regularised(regularised)
+    return est, var * scale, mu * scale, LocalSystems(m, n_sets, regularised, empty)
+
+
+def _warn_regularised(count: int) -> None:
+    warnings.warn(
+        f"{count} local kriging system(s) were numerically singular or nearly so "
+        f"(reciprocal condition below {_RCOND_LOCAL:g}) and were regularised with a small "
+        "diagonal jitter; a gaussian model without nugget or near-coincident samples cause "
+        "this: add a nugget or use another model",
+        PmapWarning,
+        stacklevel=3,
+    )
+
+
+def local_leave_one_out(
+    coords: np.ndarray, values: np.ndarray, model: VariogramModel, neighbours: int,
+    radius: float | None = None, *, block: int = DEFAULT_BLOCK, engine: str = "auto",
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Predict every sample from its ``neighbours`` nearest other samples.
+
+    Returns
+    -------
+    estimate, variance, lagrange : numpy.ndarray, shape (n,)
+        As :func:`local_ordinary_kriging`; NaN for a sample with no other within ``radius``.
+    """
+    coords, values = _check_points(coords, values)
+    est, var, mu, _ = local_ordinary_kriging(coords, values, coords, model, neighbours, radius,
+                                             block=block, exclude_self=True, engine=engine)
+    return est, var, mu

@@ -1,0 +1,177 @@
+"""Neighbourhood (local) ordinary kriging against pykrige and the global solve."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pmap.errors import PmapWarning
+from pmap.geostats.crossval import loo_kriging
+from pmap.geostats.kriging import KrigingSystem, ordinary_kriging
+from pmap.geostats.neighbourhood import (
+    local_leave_one_out,
+    local_ordinary_kriging,
+    merge_close_samples,
+    numba_available,
+)
+from pmap.geostats.variogram import VariogramModel
+
+ENGINES = ["numpy"] + (["numba"] if numba_available() else [])
+
+
+@pytest.fixture(scope="module")
+def field():
+    rng = np.random.default_rng(7)
+    xy = rng.random((400, 2)) * 1000.0
+    z = np.sin(xy[:, 0] / 180.0) + 0.5 * np.cos(xy[:, 1] / 90.0) + rng.normal(0, 0.2, 400)
+    targets = rng.random((3000, 2)) * 1100.0 - 50.0
+    return xy, z, targets
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+@pytest.mark.parametrize("kind,k", [("spherical", 16), ("exponential", 32), ("spherical", 5)])
+def test_local_matches_pykrige_c_backend(field, engine, kind, k):
+    from pykrige.ok import OrdinaryKriging
+
+    xy, z, targets = field
+    model = VariogramModel(kind, 0.04, 0.6, 250.0)
+    # Source: pykrige 1.7 OrdinaryKriging.execute(backend="C", n_closest_points=k); its
+    # exponential and spherical ranges are practical ranges like pmap's.
+    ok = OrdinaryKriging(xy[:, 0], xy[:, 1], z, variogram_model=kind,
+                         variogram_parameters={"psill": 0.6, "range": 250.0, "nugget": 0.04})
+    ref_e, ref_v = ok.execute("points", targets[:, 0], targets[:, 1], backend="C",
+                              n_closest_points=k)
+    est, var, _, stats = local_ordinary_kriging(xy, z, targets, model, k, engine=engine)
+    np.testing.assert_allclose(est, np.asarray(ref_e), rtol=0, atol=1e-6)
+    np.testing.assert_allclose(var, np.asarray(ref_v), rtol=0, atol=1e-6)
+    assert stats.distinct_sets < targets.shape[0]
+
+
+def test_local_matches_gstools_with_all_samples(field):
+    import gstools as gs
+
+    xy, z, targets = field
+    xy, z = xy[:120], z[:120]
+    model = VariogramModel("exponential", 0.05, 0.8, 300.0)
+    # Source: gstools 1.7 krige.Ordinary (exact=True), exponential len_scale = range / 3.
+    cov = gs.Exponential(dim=2, var=0.8, len_scale=100.0, nugget=0.05)
+    krig = gs.krige.Ordinary(cov, cond_pos=[xy[:, 0], xy[:, 1]], cond_val=z, exact=True)
+    ref_e, ref_v = krig(targets[:500].T, mesh_type="unstructured", return_var=True)
+    est, var, _, _ = local_ordinary_kriging(xy, z, targets[:500], model, 120)
+    np.testing.assert_allclose(est, ref_e, atol=1e-6)
+    np.testing.assert_allclose(var, ref_v, atol=1e-6)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_all_neighbours_equal_global_kriging(field, engine):
+    # common practice, no source: with k = n the local system is the global one.
+    xy, z, targets = field
+    xy, z = xy[:60], z[:60]
+    model = VariogramModel("gaussian", 0.1, 1.0, 200.0)
+    ref = ordinary_kriging(xy, z, targets[:400], model)
+    est, var, mu, _ = local_ordinary_kriging(xy, z, targets[:400], model, 60, engine=engine)
+    np.testing.assert_allclose(est, ref.estimate, atol=1e-10)
+    np.testing.assert_allclose(var, ref.variance, atol=1e-10)
+    np.testing.assert_allclose(mu, ref.lagrange, atol=1e-10)
+
+
+def test_engines_agree_with_radius_and_anisotropy(field):
+    if not numba_available():
+        pytest.skip("numba not installed")
+    xy, z, targets = field
+    model = VariogramModel("exponential", 0.05, 1.0, 400.0, ratio=0.4, angle=30.0)
+    a = local_ordinary_kriging(xy, z, targets, model, 12, radius=60.0, engine="numpy")
+    b = local_ordinary_kriging(xy, z, targets, model, 12, radius=60.0, engine="numba")
+    for x, y in zip(a[:3], b[:3], strict=True):
+        np.testing.assert_allclose(x, y, atol=1e-10, equal_nan=True)
+    assert a[3].no_neighbours == b[3].no_neighbours > 0
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_cells_without_samples_in_the_radius_are_nodata(engine):
+    xy = np.array([[0.0, 0.0], [10.0, 0.0], [0.0, 10.0], [10.0, 10.0]])
+    z = np.array([1.0, 2.0, 3.0, 4.0])
+    targets = np.array([[5.0, 5.0], [100.0, 100.0], [10.0, 3.0]])
+    model = VariogramModel("spherical", 0.0, 1.0, 30.0)
+    est, var, _, stats = local_ordinary_kriging(xy, z, targets, model, 4, radius=8.0,
+                                                engine=engine)
+    assert np.isnan(est[1]) and np.isnan(var[1])
+    assert np.all(np.isfinite(est[[0, 2]]))
+    assert stats.no_neighbours == 1
+    # Only samples 1 (3 m) and 3 (7 m) are within 8 m of (10, 3): a two-point system.
+    two = ordinary_kriging(xy[[1, 3]], z[[1, 3]], targets[2:], model)
+    assert est[2] == pytest.approx(two.estimate[0], abs=1e-12)
+    assert var[2] == pytest.approx(two.variance[0], abs=1e-12)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_local_leave_one_out_equals_global_with_all_neighbours(field, engine):
+    xy, z, _ = field
+    xy, z = xy[:80], z[:80]
+    model = VariogramModel("spherical", 0.05, 0.9, 300.0)
+    ref = loo_kriging(xy, z, model)
+    got = local_leave_one_out(xy, z, model, 79, engine=engine)
+    for a, b in zip(got, ref, strict=True):
+        np.testing.assert_allclose(a, b, atol=1e-10)
+
+
+def test_singular_local_systems_are_regularised_with_a_warning():
+    rng = np.random.default_rng(1)
+    xy = rng.random((200, 2)) * 100.0
+    z = np.sin(xy[:, 0] / 30.0)
+    model = VariogramModel("gaussian", 0.0, 1.0, 400.0)   # smooth, no nugget: singular
+    with pytest.warns(PmapWarning, match="regularised"):
+        est, var, _, stats = local_ordinary_kriging(xy, z, rng.random((300, 2)) * 100.0,
+                                                    model, 16)
+    assert stats.regularised > 0
+    assert np.all(np.isfinite(est)) and np.all(var >= 0)
+
+
+def test_near_duplicates_are_merged_before_the_local_solve():
+    xy = np.array([[0.0, 0.0], [0.0, 0.0004], [50.0, 0.0], [0.0, 50.0], [50.0, 50.0]])
+    z = np.array([1.0, 3.0, 5.0, 7.0, 9.0])
+    merged_xy, merged_z, n = merge_close_samples(xy, z, 1e-3)
+    assert n == 1 and merged_z[0] == pytest.approx(2.0)
+    model = VariogramModel("exponential", 0.1, 1.0, 100.0)
+    with pytest.warns(PmapWarning, match="averaged"):
+        res = ordinary_kriging(xy, z, np.array([[20.0, 20.0]]), model, neighbours=4)
+    ref = ordinary_kriging(merged_xy, merged_z, np.array([[20.0, 20.0]]), model)
+    assert res.estimate[0] == pytest.approx(ref.estimate[0], abs=1e-12)
+
+
+def test_radius_without_neighbours_is_refused(field):
+    xy, z, targets = field
+    with pytest.raises(ValueError, match="radius needs neighbours"):
+        ordinary_kriging(xy, z, targets, VariogramModel("spherical", 0, 1, 100), radius=50.0)
+
+
+def test_global_system_is_shared_by_map_and_leave_one_out(field):
+    # Source: Dubrule (1983), Math. Geol. 15: leave-one-out from the inverse of the full
+    # system equals kriging each sample from the other n - 1 (checked here by brute force).
+    xy, z, _ = field
+    xy, z = xy[:50], z[:50]
+    model = VariogramModel("exponential", 0.05, 1.3, 250.0)
+    system = KrigingSystem.factorise(xy, z, model)
+    est, var, mu = system.leave_one_out()
+    for i in (0, 17, 49):
+        keep = np.arange(50) != i
+        one = ordinary_kriging(xy[keep], z[keep], xy[i:i + 1], model)
+        assert est[i] == pytest.approx(one.estimate[0], abs=1e-10)
+        assert var[i] == pytest.approx(one.variance[0], abs=1e-10)
+        assert mu[i] == pytest.approx(one.lagrange[0], abs=1e-10)
+    folds = np.arange(50) % 5
+    f_est, f_var, f_mu = system.held_out(folds)
+    out = folds == 2
+    ref = ordinary_kriging(xy[~out], z[~out], xy[out], model)
+    np.testing.assert_allclose(f_est[out], ref.estimate, atol=1e-10)
+    np.testing.assert_allclose(f_var[out], ref.variance, atol=1e-10)
+    np.testing.assert_allclose(f_mu[out], ref.lagrange, atol=1e-10)
+
+
+def test_block_size_does_not_change_results(field):
+    xy, z, targets = field
+    model = VariogramModel("spherical", 0.05, 0.9, 300.0)
+    a = local_ordinary_kriging(xy, z, targets, model, 10, engine="numpy", block=97)
+    b = local_ordinary_kriging(xy, z, targets, model, 10, engine="numpy", block=100000)
+    for x, y in zip(a[:3], b[:3], strict=True):
+        np.testing.assert_allclose(x, y, atol=1e-12)
