@@ -128,8 +128,36 @@ def _discrete_rates(array: np.ndarray, unit: str) -> tuple[np.ndarray, dict[int,
 def _model_text(interp: Any) -> str:
     """One line describing a fitted variogram and its cross-validation, for plots."""
     m, cv = interp.model, interp.cv
-    return (f"{m.kind}: nugget {m.nugget:.3g}, partial sill {m.psill:.3g}, range {m.range:.0f} m"
+    shape = f", shape {m.shape:.2f}" if m.shape is not None else ""
+    aniso = (f", anisotropy {m.ratio:.2f} at {m.angle:.0f} deg" if m.anisotropic else "")
+    hood = interp.neighbourhood
+    where = (f", {hood.neighbours} nearest samples" if hood is not None and hood.kind == "local"
+             else "")
+    return (f"{'log ' if interp.log else ''}{m.kind}: nugget {m.nugget:.3g}, partial sill "
+            f"{m.psill:.3g}, range {m.range:.0f} m{shape}{aniso}{where}"
             f" | n = {cv.n}, LOO RMSE {cv.rmse:.3g}, MSDR {cv.msdr:.2f}")
+
+
+#: Most candidate rows printed under a variogram plot (all are in summary.json).
+_TABLE_ROWS = 12
+
+
+def _candidate_table(interp: Any) -> list[str]:
+    """Rows of every candidate's figures for the variogram plot, best RMSE first."""
+    rows = [c for c in interp.candidates if c.cv is not None]
+    if len(interp.candidates) < 2:
+        return []
+    rows.sort(key=lambda c: c.cv.rmse)
+    lines = [f"chosen: {interp.selection}",
+             f"  {'candidate':<58} {'LOO RMSE':>9} {'MSDR':>6}"]
+    for c in rows[:_TABLE_ROWS]:
+        mark = "*" if (c.model == interp.model and c.log == interp.log) else " "
+        lines.append(f"{mark} {c.label:<58} {c.cv.rmse:>9.4g} {c.cv.msdr:>6.2f}")
+    skipped = [c for c in interp.candidates if c.skipped]
+    more = len(rows) - _TABLE_ROWS
+    if more > 0 or skipped:
+        lines.append(f"  ({max(more, 0)} more and {len(skipped)} skipped: see summary.json)")
+    return lines
 
 
 def _hex_to_rgba(colour: str) -> tuple[int, int, int, int]:
@@ -329,6 +357,10 @@ def write_outputs(
                 + ("log " if interp.log else "") + layer_info(name).title.replace(" (kriged)", ""),
                 unit=("log units" if interp.log else layer_info(name).unit),
                 subtitle=_model_text(interp),
+                candidates=[(c.label, c.model) if c.log == interp.log else (c.label, None)
+                            for c in interp.candidates
+                            if not (c.model == interp.model and c.log == interp.log)],
+                table=_candidate_table(interp),
             )
             outputs[f"maps/variogram_{name}.png"] = f"empirical and fitted variogram of {name}"
 

@@ -6,6 +6,11 @@ Pure numerics on numpy arrays (coordinates in metres of a projected CRS).  See
 
 from __future__ import annotations
 
+from pmap.geostats.anisotropy import (
+    anisotropy_from_directional,
+    directional_variograms,
+    fit_anisotropic_variogram,
+)
 from pmap.geostats.crossval import CrossValidation, leave_one_out, loo_kriging
 from pmap.geostats.diagnostics import (
     TrendTest,
@@ -37,8 +42,16 @@ from pmap.geostats.kriging import (
     ordinary_kriging,
 )
 from pmap.geostats.outliers import Outlier, flag_outliers, modified_z
+from pmap.geostats.simulation import (
+    NormalScore,
+    realisation_probability,
+    realisation_quantile,
+    sequential_gaussian_simulation,
+    simulate_normal_scores,
+)
 from pmap.geostats.variogram import (
     CONSTANT,
+    ESTIMATORS,
     MAX_RANGE_FACTOR,
     MODELS,
     EmpiricalVariogram,
@@ -92,4 +105,13 @@ __all__ = [
     "neighbour_spacing",
     "neighbour_correlation",
     "MAX_RANGE_FACTOR",
+    "ESTIMATORS",
+    "directional_variograms",
+    "anisotropy_from_directional",
+    "fit_anisotropic_variogram",
+    "NormalScore",
+    "sequential_gaussian_simulation",
+    "simulate_normal_scores",
+    "realisation_probability",
+    "realisation_quantile",
 ]

@@ -20,7 +20,8 @@ import numpy as np
 
 from pmap._checks import check_number, check_whole, require
 from pmap.errors import ConfigError, InputError, InsufficientDataError, ModelFitError, PmapWarning
-from pmap.geostats.crossval import CrossValidation, leave_one_out
+from pmap.geostats.anisotropy import fit_anisotropic_variogram
+from pmap.geostats.crossval import CrossValidation, k_fold, leave_one_out
 from pmap.geostats.diagnostics import (
     CLOSE_PAIR_FRACTION,
     PURE_NUGGET_FRACTION,
@@ -36,23 +37,35 @@ from pmap.geostats.diagnostics import (
 )
 from pmap.geostats.kriging import (
     KrigingResult,
+    KrigingSystem,
     SingularSystemError,
     check_duplicates,
     clip_to_limits,
+    lognormal_back_transform,
     lognormal_log_moments,
-    lognormal_ordinary_kriging,
     ordinary_kriging,
 )
 from pmap.geostats.outliers import DEFAULT_THRESHOLD, MAX_OUTLIER_FRACTION, Outlier, modified_z
+from pmap.geostats.selection import (
+    METHODS,
+    SELECTION_RULES,
+    Candidate,
+    Neighbourhood,
+    choose_candidate,
+    choose_neighbourhood,
+    variogram_subsample,
+)
 from pmap.geostats.variogram import (
     CONSTANT,
+    ESTIMATORS,
     MAX_RANGE_FACTOR,
     MODELS,
     EmpiricalVariogram,
     VariogramModel,
     default_cutoff,
     empirical_variogram,
-    fit_variograms,
+    fit_variogram,
+    weighted_sse,
 )
 
 __all__ = ["KrigingSettings", "Interpolation", "interpolate", "nugget_floor", "sample_skewness",
@@ -61,6 +74,8 @@ __all__ = ["KrigingSettings", "Interpolation", "interpolate", "nugget_floor", "s
 _LOG_CHOICES = ("auto", "always", "never")
 # Sample skewness above which "auto" kriges the logarithm.
 _SKEW_LIMIT = 1.0
+# Fewest samples for which a geometric anisotropy is fitted (four directions need pairs).
+_MIN_ANISOTROPY_SAMPLES = 50
 #: Properties that are logarithms already (pH = -log10 of the H+ activity): never log-kriged.
 LOGARITHMIC: tuple[str, ...] = ("ph",)
 
@@ -73,9 +88,84 @@ class KrigingSettings:
         default=MODELS,
         metadata={
             "unit": "",
-            "doc": "variogram model families tried; the lowest weighted SSE (weights N_h/h^2) wins",
-            "source": "gstat fit.variogram (Pebesma)",
+            "doc": "variogram model families tried (see kriging.selection for how one is chosen)",
+            "source": "gstat fit.variogram (Pebesma); gstools (Mueller et al. 2022)",
         },
+    )
+    selection: str = field(
+        default="cross-validation",
+        metadata={
+            "unit": "",
+            "doc": "'cross-validation': every family, with the nugget fitted and held at the "
+            "lab-error floor, on the values and (not for pH) their logarithms, is "
+            "cross-validated by leave-one-out; the lowest RMSE wins, ties within "
+            "kriging.rmse_tie go to the MSDR nearest 1. 'sse': log by skewness and the lowest "
+            "weighted SSE against the empirical variogram",
+            "source": "common practice, no source",
+        },
+    )
+    rmse_tie: float = field(
+        default=0.01,
+        metadata={"unit": "fraction", "doc": "leave-one-out RMSEs within this relative margin "
+                  "of the best count as tied (then the MSDR nearest 1 wins)",
+                  "source": "common practice, no source"},
+    )
+    estimator: str = field(
+        default="matheron",
+        metadata={"unit": "", "doc": "empirical variogram estimator: 'matheron' or the robust "
+                  "'cressie-hawkins'", "source": "Cressie & Hawkins 1980, Math. Geol. 12"},
+    )
+    anisotropy: str = field(
+        default="auto",
+        metadata={"unit": "", "doc": "'auto': fit a geometric anisotropy (ratio, angle) to the "
+                  "chosen family and keep it only if it lowers the leave-one-out RMSE by "
+                  "kriging.anisotropy_gain; 'never': isotropic only",
+                  "source": "common practice, no source"},
+    )
+    anisotropy_gain: float = field(
+        default=0.02,
+        metadata={"unit": "fraction", "doc": "least relative drop of the leave-one-out RMSE "
+                  "for which an anisotropic model replaces the isotropic one",
+                  "source": "common practice, no source"},
+    )
+    method: str = field(
+        default="auto",
+        metadata={"unit": "", "doc": "'global' (one dense system of all samples), 'local' (each "
+                  "cell from its kriging.neighbours nearest samples) or 'auto': global up to "
+                  "kriging.global_max_samples, local beyond", "source": "common practice, no source"},
+    )
+    neighbours: int = field(
+        default=16,
+        metadata={"unit": "samples", "doc": "samples per cell in local kriging",
+                  "source": "common practice, no source"},
+    )
+    search_radius_m: float = field(
+        default=0.0,
+        metadata={"unit": "m", "doc": "local kriging uses only samples within this distance; a "
+                  "cell with none is nodata. 0: no limit", "source": "common practice, no source"},
+    )
+    global_max_samples: int = field(
+        default=2000,
+        metadata={"unit": "samples", "doc": "most samples kriged globally under method 'auto' "
+                  "(2,000 samples: a dense system of about 100 MiB)",
+                  "source": "common practice, no source"},
+    )
+    variogram_max_samples: int = field(
+        default=5000,
+        metadata={"unit": "samples", "doc": "with more samples, the empirical variogram is "
+                  "computed from a random subsample of this size (seeded by kriging.seed)",
+                  "source": "common practice, no source"},
+    )
+    k_folds: int = field(
+        default=10,
+        metadata={"unit": "folds", "doc": "folds of the k-fold cross-validation reported beside "
+                  "leave-one-out (random, seeded by kriging.seed)",
+                  "source": "common practice, no source"},
+    )
+    seed: int = field(
+        default=0,
+        metadata={"unit": "", "doc": "seed of the variogram subsample and the k-fold folds",
+                  "source": "common practice, no source"},
     )
     n_bins: int = field(
         default=15,
@@ -171,6 +261,19 @@ class KrigingSettings:
             raise ConfigError(f"kriging.models: unknown model(s) {unknown}; choose from {list(MODELS)}")
         if len(set(self.models)) != len(self.models):
             raise ConfigError(f"kriging.models lists a model twice: {list(self.models)}")
+        for key, choices in (("selection", SELECTION_RULES), ("estimator", ESTIMATORS),
+                             ("anisotropy", ("auto", "never")), ("method", METHODS)):
+            if getattr(self, key) not in choices:
+                raise ConfigError(f"kriging.{key} must be one of {list(choices)}, got "
+                                  f"{getattr(self, key)!r}")
+        check_number("kriging.rmse_tie", self.rmse_tie, ge=0, lt=1)
+        check_number("kriging.anisotropy_gain", self.anisotropy_gain, ge=0, lt=1)
+        check_whole("kriging.neighbours", self.neighbours, ge=3)
+        check_number("kriging.search_radius_m", self.search_radius_m, ge=0, finite=True)
+        check_whole("kriging.global_max_samples", self.global_max_samples, ge=10)
+        check_whole("kriging.variogram_max_samples", self.variogram_max_samples, ge=100)
+        check_whole("kriging.k_folds", self.k_folds, ge=2)
+        check_whole("kriging.seed", self.seed, ge=0)
         check_whole("kriging.n_bins", self.n_bins, ge=3)
         check_number("kriging.cutoff_fraction", self.cutoff_fraction, gt=0, le=1)
         if self.log_transform not in _LOG_CHOICES:
@@ -248,8 +351,9 @@ class Interpolation:
     model : VariogramModel
         The variogram model used; kind ``"constant"`` (zero variogram) for a property
         whose samples are all equal.
-    candidates : dict
-        Weighted SSE of every model family fitted (empty for a constant).
+    candidates : tuple of Candidate
+        Every variogram tried, with its weighted SSE and leave-one-out figures (empty for
+        a constant); see :mod:`pmap.geostats.selection` for the rule.
     result : KrigingResult
         Estimates and variances at the targets, in the property's units.  The estimates
         are clipped to the physical ``limits`` given to :func:`interpolate`: they are the
@@ -263,6 +367,15 @@ class Interpolation:
         Samples named as likely outliers (see :mod:`pmap.geostats.outliers`).
     notes : tuple of str
         The warnings issued for this property, in order.
+    neighbourhood : Neighbourhood
+        Global or local kriging, and the rule that chose it.
+    k_fold : CrossValidation
+        k-fold figures (``kriging.k_folds`` random folds) of the chosen model.
+    selection : str
+        The rule that chose the model, in words.
+    variogram_samples : int
+        Samples the empirical variogram was computed from (a seeded subsample when more
+        than ``kriging.variogram_max_samples``).
     diagnostics : dict
         Figures behind the warnings: ``nugget_floor`` (squared kriged units),
         ``pure_nugget``, ``spacing_m`` (median nearest-neighbour distance, m),
@@ -276,13 +389,17 @@ class Interpolation:
     log: bool
     empirical: EmpiricalVariogram
     model: VariogramModel
-    candidates: dict[str, float]
+    candidates: tuple[Candidate, ...]
     result: KrigingResult
     cv: CrossValidation
     kind: str = "kriged"
     outliers: tuple[Outlier, ...] = ()
     notes: tuple[str, ...] = ()
     diagnostics: dict[str, Any] = field(default_factory=dict)
+    neighbourhood: Neighbourhood | None = None
+    k_fold: CrossValidation | None = None
+    selection: str = ""
+    variogram_samples: int = 0
 
     def kriged_moments(self) -> tuple[np.ndarray, np.ndarray]:
         """Mean and variance of the kriging distribution in the space that was kriged.
@@ -304,9 +421,15 @@ class Interpolation:
             "kind": self.kind,
             "log": bool(self.log),
             "model": self.model.as_dict(),
-            "candidates": {k: float(v) for k, v in self.candidates.items()},
+            "selection": self.selection,
+            "candidates": [c.as_dict(chosen=c.model == self.model and c.log == self.log)
+                           for c in self.candidates],
+            "neighbourhood": (self.neighbourhood.as_dict() if self.neighbourhood is not None
+                              else None),
+            "variogram_samples": int(self.variogram_samples),
             "variogram": self.empirical.as_dict(),
             "cv": self.cv.as_dict(),
+            "k_fold": self.k_fold.as_dict() if self.k_fold is not None else None,
             "outliers": [o.as_dict() for o in self.outliers],
             "notes": list(self.notes),
             "diagnostics": {k: (v if isinstance(v, (bool, int, str)) else float(v))
@@ -349,43 +472,172 @@ def choose_log(values: np.ndarray, rule: str = "auto", *, name: str | None = Non
 
 @dataclass(frozen=True)
 class _Fit:
-    """One pass of log choice, variogram fit, kriging and cross-validation."""
+    """One pass of variogram choice, kriging and cross-validation."""
 
     log: bool
     kriged: np.ndarray
     empirical: EmpiricalVariogram
     model: VariogramModel
-    candidates: dict[str, float]
+    candidates: tuple[Candidate, ...]
     result: KrigingResult
     cv: CrossValidation
+    k_fold: CrossValidation
     floor: float
     notes: tuple[str, ...]
+    neighbourhood: Neighbourhood
+    selection: str
+    variogram_samples: int
+
+
+def _transforms(name: str, values: np.ndarray, settings: KrigingSettings) -> tuple[bool, ...]:
+    """The transforms to try: plain and/or log, under kriging.log_transform and selection."""
+    if settings.selection == "sse" or settings.log_transform != "auto":
+        return (choose_log(values, settings.log_transform, name=name),)
+    if name in LOGARITHMIC or np.any(~(values > 0)):
+        return (False,)
+    return (False, True)
+
+
+def _empirical(coords: np.ndarray, kriged: np.ndarray, settings: KrigingSettings,
+               subsample: np.ndarray | None) -> EmpiricalVariogram:
+    xy, z = (coords, kriged) if subsample is None else (coords[subsample], kriged[subsample])
+    cutoff = default_cutoff(xy, settings.cutoff_fraction)
+    return empirical_variogram(xy, z, cutoff=cutoff, n_bins=settings.n_bins,
+                               estimator=settings.estimator)
 
 
 def _fit(
     name: str, coords: np.ndarray, values: np.ndarray, targets: np.ndarray,
     settings: KrigingSettings, limits: tuple[float, float] | None,
 ) -> _Fit:
-    log = choose_log(values, settings.log_transform, name=name)
-    kriged = np.log(values) if log else values
-    cutoff = default_cutoff(coords, settings.cutoff_fraction)
-    emp = empirical_variogram(coords, kriged, cutoff=cutoff, n_bins=settings.n_bins)
-    floor = nugget_floor(name, values, log, settings)
-    try:
-        models, candidates = fit_variograms(emp, settings.models, min_nugget=floor)
-    except ModelFitError as exc:
-        raise ModelFitError(f"{name}: {exc}") from exc
-    krige = lognormal_ordinary_kriging if log else ordinary_kriging
+    n = values.size
+    hood = choose_neighbourhood(
+        n, method=settings.method, neighbours=settings.neighbours,
+        radius=settings.search_radius_m or None, global_max_samples=settings.global_max_samples)
+    k, radius = hood.neighbours, hood.radius
+    subsample = variogram_subsample(n, settings.variogram_max_samples, settings.seed)
+    n_vario = n if subsample is None else int(subsample.size)
     notes: list[str] = []
-    for model in models:
+    candidates: list[Candidate] = []
+    systems: dict[int, KrigingSystem] = {}
+    empiricals: dict[bool, EmpiricalVariogram] = {}
+    floors: dict[bool, float] = {}
+    reasons: list[str] = []
+    by_cv = settings.selection == "cross-validation"
+
+    def evaluate(log: bool, model: VariogramModel, nugget: str, wsse: float) -> Candidate:
+        kriged = np.log(values) if log else values
         try:
-            result = krige(coords, values, targets, model, chunk_size=settings.chunk_size)
-            cv = leave_one_out(coords, values, model, log=log, limits=limits)
+            system = None if k is not None else KrigingSystem.factorise(coords, kriged, model)
+            cv = leave_one_out(coords, values, model, log=log, limits=limits, neighbours=k,
+                               radius=radius, system=system)
         except SingularSystemError as exc:
-            notes.append(f"{name}: skipping the {model.kind} variogram: {exc}")
-            continue
-        return _Fit(log, kriged, emp, model, candidates, result, cv, floor, tuple(notes))
-    raise ModelFitError(f"{name}: every fitted variogram model gives a singular kriging system")
+            return Candidate(log, model, nugget, wsse, None, skipped=str(exc))
+        cand = Candidate(log, model, nugget, wsse, cv)
+        if system is not None:
+            systems[id(cand)] = system
+        return cand
+
+    for log in _transforms(name, values, settings):
+        kriged = np.log(values) if log else values
+        emp = _empirical(coords, kriged, settings, subsample)
+        floor = nugget_floor(name, values, log, settings)
+        empiricals[log], floors[log] = emp, floor
+        fitted: list[Candidate] = []
+        for kind in settings.models:
+            options = (("fitted", None), ("lab error", floor)) if by_cv else (("fitted", None),)
+            free_nugget = np.inf
+            for nugget, fixed in options:
+                if fixed is not None and free_nugget <= fixed * (1.0 + 1e-6):
+                    continue                     # the free fit already sits on the floor
+                try:
+                    model = fit_variogram(emp, kind, min_nugget=floor, max_nugget=fixed)
+                except ModelFitError as exc:
+                    reasons.append(f"{'log ' if log else ''}{kind}: {exc}")
+                    continue
+                if fixed is None:
+                    free_nugget = model.nugget
+                fitted.append(Candidate(log, model, nugget, weighted_sse(emp, model)))
+        if by_cv:
+            candidates.extend(evaluate(c.log, c.model, c.nugget, c.wsse) for c in fitted)
+        else:
+            fitted.sort(key=lambda c: c.wsse)
+            candidates.extend(fitted)
+    if not candidates:
+        raise ModelFitError(f"{name}: no variogram model could be fitted ("
+                            + "; ".join(reasons) + ")")
+
+    if by_cv:
+        try:
+            chosen = choose_candidate(candidates, settings.rmse_tie)
+        except ValueError:
+            raise ModelFitError(f"{name}: every fitted variogram model gives a singular kriging "
+                                "system") from None
+        rule = (f"lowest leave-one-out RMSE of {len(candidates)} candidates (ties within "
+                f"{100 * settings.rmse_tie:g} % to the MSDR nearest 1)")
+    else:
+        chosen = None
+        for cand in candidates:
+            evaluated = evaluate(cand.log, cand.model, cand.nugget, cand.wsse)
+            candidates[candidates.index(cand)] = evaluated
+            if evaluated.skipped:
+                notes.append(f"{name}: skipping the {cand.model.kind} variogram: {evaluated.skipped}")
+                continue
+            chosen = evaluated
+            break
+        if chosen is None:
+            raise ModelFitError(f"{name}: every fitted variogram model gives a singular kriging "
+                                "system")
+        rule = "lowest weighted SSE against the empirical variogram (kriging.selection = 'sse')"
+    for cand in candidates:
+        if cand.skipped and by_cv:
+            notes.append(f"{name}: the {cand.label} candidate was skipped: {cand.skipped}")
+
+    if settings.anisotropy == "auto" and n >= _MIN_ANISOTROPY_SAMPLES:
+        sub_xy = coords if subsample is None else coords[subsample]
+        kriged = np.log(values) if chosen.log else values
+        sub_z = kriged if subsample is None else kriged[subsample]
+        emp = empiricals[chosen.log]
+        try:
+            aniso = fit_anisotropic_variogram(
+                sub_xy, sub_z, chosen.model.kind, cutoff=emp.cutoff, n_bins=settings.n_bins,
+                min_nugget=floors[chosen.log], estimator=settings.estimator)
+        except ModelFitError as exc:
+            notes_aniso = f"anisotropic fit failed: {exc}"
+            aniso = None
+        else:
+            notes_aniso = ""
+        if aniso is not None and aniso.anisotropic:
+            cand = evaluate(chosen.log, aniso, chosen.nugget, weighted_sse(emp, aniso))
+            candidates.append(cand)
+            if (cand.cv is not None and not cand.skipped and chosen.cv is not None
+                    and cand.cv.rmse <= chosen.cv.rmse * (1.0 - settings.anisotropy_gain)):
+                chosen = cand
+                rule += (f"; the geometric anisotropy lowered the RMSE by at least "
+                         f"{100 * settings.anisotropy_gain:g} % and was kept")
+        elif notes_aniso:
+            notes.append(f"{name}: {notes_aniso}")
+
+    log, model = chosen.log, chosen.model
+    kriged = np.log(values) if log else values
+    system = systems.get(id(chosen))
+    if k is None:
+        if system is None:
+            system = KrigingSystem.factorise(coords, kriged, model)
+        raw = system.predict(targets, settings.chunk_size)
+    else:
+        raw = ordinary_kriging(coords, kriged, targets, model, k, radius,
+                               chunk_size=settings.chunk_size)
+    if log:
+        estimate, variance = lognormal_back_transform(raw.estimate, raw.variance, raw.lagrange)
+        result = KrigingResult(estimate, variance, raw.lagrange)
+    else:
+        result = raw
+    folds = k_fold(coords, values, model, folds=min(settings.k_folds, n), seed=settings.seed,
+                   log=log, limits=limits, neighbours=k, radius=radius, system=system)
+    assert chosen.cv is not None
+    return _Fit(log, kriged, empiricals[log], model, tuple(candidates), result, chosen.cv, folds,
+                floors[log], tuple(notes), hood, rule, n_vario)
 
 
 def _find_outliers(
@@ -503,7 +755,7 @@ def _constant(
                    "neighbour_correlation": 1.0, "no_structure": False, "msdr_in_band": True,
                    "trend_r2": 0.0, "trend_p": 1.0, "close_pairs": 0, "clipped_cells": clipped,
                    "n_dropped": 0, "n_large_errors": 0}
-    return Interpolation(name, False, emp, VariogramModel(CONSTANT, 0.0, 0.0, cutoff), {}, result,
+    return Interpolation(name, False, emp, VariogramModel(CONSTANT, 0.0, 0.0, cutoff), (), result,
                          cv, kind="constant", notes=(note,), diagnostics=diagnostics)
 
 
@@ -733,4 +985,6 @@ def interpolate(
         "clipped_cells": int(clipped), "n_dropped": n_dropped, "n_large_errors": n_mismatch,
     }
     return Interpolation(name, fit.log, emp, model, fit.candidates, result, cv, kind="kriged",
-                         outliers=tuple(found), notes=tuple(notes), diagnostics=diagnostics)
+                         outliers=tuple(found), notes=tuple(notes), diagnostics=diagnostics,
+                         neighbourhood=fit.neighbourhood, k_fold=fit.k_fold,
+                         selection=fit.selection, variogram_samples=fit.variogram_samples)

@@ -17,7 +17,7 @@ import math
 import os
 import tempfile
 import textwrap
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 
 import numpy as np
@@ -173,6 +173,8 @@ def plot_variogram(
     title: str,
     unit: str,
     subtitle: str = "",
+    candidates: Sequence[tuple[str, Callable[[np.ndarray], np.ndarray] | None]] = (),
+    table: Sequence[str] = (),
 ) -> Path:
     """Plot an empirical variogram (point area grows with the pair count) and the fitted model.
 
@@ -192,6 +194,11 @@ def plot_variogram(
         Title (e.g. field and property) and a second line (e.g. model and parameters).
     unit : str
         Unit of the property (e.g. ``"mg/kg"``); the y axis shows its square.
+    candidates : sequence of (label, callable or None)
+        Other models tried on the same variable, drawn as thin dashed lines (None: not
+        drawable on these axes, e.g. fitted to the logarithms).
+    table : sequence of str
+        Lines printed under the plot (e.g. every candidate's cross-validation figures).
     """
     from matplotlib.figure import Figure
 
@@ -200,8 +207,15 @@ def plot_variogram(
     counts = np.asarray(counts, dtype=np.float64)
     if not (lags.shape == gamma.shape == counts.shape):
         raise ValueError("lags, gamma and counts must have the same shape")
-    fig = Figure(figsize=(6.5, 4.5), dpi=_DPI, layout="constrained")
-    ax = fig.add_subplot()
+    height = 4.5 + (0.16 * (len(table) + 1) if table else 0.0)
+    fig = Figure(figsize=(6.5, height), dpi=_DPI, layout="constrained")
+    if table:
+        ax, text_ax = fig.subplots(2, 1, height_ratios=[4.5, height - 4.5])
+        text_ax.axis("off")
+        text_ax.text(0.0, 1.0, "\n".join(table), va="top", ha="left", family="monospace",
+                     fontsize=6.5, transform=text_ax.transAxes)
+    else:
+        ax = fig.add_subplot()
     ok = np.isfinite(lags) & np.isfinite(gamma)
     top = counts[ok].max() if ok.any() and counts[ok].max() > 0 else 1.0
     sizes = 15 + 185 * counts[ok] / top
@@ -213,7 +227,12 @@ def plot_variogram(
     h_max = float(lags[ok].max()) * 1.1 if ok.any() else 1.0
     h = np.linspace(0.0, h_max, 200)
     fitted = np.asarray(model_callable(h), dtype=np.float64)
-    ax.plot(h, fitted, color="#440154", linewidth=1.5, zorder=2, label="fitted model")
+    ax.plot(h, fitted, color="#440154", linewidth=1.5, zorder=2, label="chosen model")
+    drawn = [f for _, f in candidates if f is not None]
+    for k, func in enumerate(drawn):
+        ax.plot(h, np.asarray(func(h), dtype=np.float64), color="0.55", linewidth=0.7,
+                linestyle=(0, (4, 2)), zorder=1,
+                label="other candidates" if k == 0 else None)
     ax.set_xlim(0, h_max)
     peaks = np.concatenate([gamma[ok], fitted[np.isfinite(fitted)]])
     ax.set_ylim(0, 1.12 * float(peaks.max()) if peaks.size and peaks.max() > 0 else 1.0)
@@ -223,7 +242,7 @@ def plot_variogram(
     ax.legend(loc="lower right", fontsize=8)
     fig.suptitle(title, x=0.02, ha="left", fontsize=12, fontweight="bold")
     if subtitle:
-        ax.set_title(subtitle, loc="left", fontsize=9, color="0.3")
+        ax.set_title(textwrap.fill(subtitle, 105), loc="left", fontsize=8, color="0.3")
     return _save(fig, path_png)
 
 

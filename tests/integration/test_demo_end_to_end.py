@@ -9,6 +9,7 @@ import pytest
 import rasterio
 
 from pmap.demo import DEMO_CRS, truth
+from pmap.geostats.variogram import MODELS
 from pmap.grid import NODATA
 
 CONTINUOUS = ["ph", "ph_variance", "total_p", "total_p_variance", "stp", "stp_variance",
@@ -118,7 +119,7 @@ def test_summary_json(demo_run):
     assert summary["soil_test_p_driving_rates"]["source"] == "measured"
     for name in ("ph", "total_p", "stp"):
         prop = summary["properties"][name]
-        assert prop["model"]["kind"] in ("spherical", "exponential", "gaussian")
+        assert prop["model"]["kind"] in MODELS
         assert set(prop["cv"]) >= {"mean_error", "rmse", "msdr"}
         assert 0.3 < prop["cv"]["msdr"] < 3
     area = sum(z["area_ha"] for z in summary["zones"])

@@ -55,11 +55,12 @@ def test_one_total_p_slip_is_named_by_id_and_row(slip_and_no_carbonate):
     assert all(abs(e["z"]) > 3.5 and e["dropped"] is False for e in entries)
     assert {e["kind"] for e in entries} <= {"value", "cross-validation"}
     # The slip is kept (kriging.drop_outliers = false): the fit leaves neighbouring samples
-    # uncorrelated, and the warnings say that the map is the field mean and its variance wrong.
+    # uncorrelated, and the warnings say that the map is the field mean.  (Chosen by
+    # cross-validation, the model's MSDR may sit in its band: every candidate's variance
+    # then covers the slip's huge error.)
     assert any(w.startswith("total_p") and "field mean" in w for w in result.warnings)
-    assert any(w.startswith("total_p") and "MSDR" in w for w in result.warnings)
     diagnostics = summary["properties"]["total_p"]["diagnostics"]
-    assert diagnostics["msdr_in_band"] is False and diagnostics["no_structure"] is True
+    assert diagnostics["no_structure"] is True
 
 
 def test_constant_caco3_is_mapped_and_the_run_finishes(slip_and_no_carbonate):

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import warnings
+from dataclasses import replace
 
 import numpy as np
 import pytest
@@ -17,7 +18,10 @@ from pmap.geostats.interpolate import (
     nugget_floor,
     sample_skewness,
 )
-from pmap.geostats.variogram import MAX_RANGE_FACTOR
+from pmap.geostats.variogram import DEFAULT_MODELS, MAX_RANGE_FACTOR
+
+# The earlier rule: log by skewness, model by weighted SSE (kriging.selection = 'sse').
+SSE = KrigingSettings(selection="sse", models=DEFAULT_MODELS)
 
 
 def _grid_samples(seed: int = 0, spacing: float = 100.0) -> np.ndarray:
@@ -122,7 +126,8 @@ def test_meuse_zinc_end_to_end(meuse):
     targets = np.column_stack([np.linspace(179000, 181000, 50), np.linspace(330500, 333000, 50)])
     with warnings.catch_warnings():
         warnings.simplefilter("error")  # a well-behaved reference data set raises no warning
-        out = interpolate("zinc", coords, zinc, targets)
+        out = interpolate("zinc", coords, zinc, targets,
+                          KrigingSettings(selection="sse", models=DEFAULT_MODELS))
     assert out.log is True  # zinc is right-skewed
     assert out.model.kind == "spherical"
     # Source: gstat fit.variogram documentation / vignette (Pebesma): log(zinc) spherical fit
@@ -133,7 +138,8 @@ def test_meuse_zinc_end_to_end(meuse):
     summary = json.loads(json.dumps(out.as_dict()))
     assert summary["log"] is True
     assert summary["model"]["kind"] == "spherical"
-    assert set(summary["candidates"]) == {"spherical", "exponential", "gaussian"}
+    assert {c["model"]["kind"] for c in summary["candidates"]} == set(DEFAULT_MODELS)
+    assert [c["chosen"] for c in summary["candidates"]].count(True) == 1
     assert summary["variogram"]["count"][:3] == [57, 299, 419]
     assert set(summary["cv"]) == {"mean_error", "rmse", "msdr", "n"}
     assert summary["kind"] == "kriged" and summary["outliers"] == [] and summary["notes"] == []
@@ -146,7 +152,7 @@ def test_never_log_and_model_subset(meuse):
     settings = KrigingSettings(models=("exponential",), log_transform="never")
     out = interpolate("zinc", coords, zinc, coords[:3], settings)
     assert out.log is False and out.model.kind == "exponential"
-    assert list(out.candidates) == ["exponential"]
+    assert {(c.model.kind, c.log) for c in out.candidates} == {("exponential", False)}
     np.testing.assert_allclose(out.result.estimate, zinc[:3])
 
 
@@ -165,10 +171,16 @@ def test_singular_gaussian_is_skipped_for_next_model():
     coords = np.column_stack([gx.ravel(), gy.ravel()])
     values = 10.0 + np.exp(-((coords[:, 0] - 200.0) ** 2 + (coords[:, 1] - 200.0) ** 2) / (2 * 150.0**2))
     settings = KrigingSettings(models=("gaussian", "spherical"), log_transform="never",
-                               lab_error_sd_ph=0.0)
+                               lab_error_sd_ph=0.0, selection="sse")
     with pytest.warns(UserWarning, match="skipping the gaussian"):
         out = interpolate("ph", coords, values, coords[:2] + 5.0, settings)
     assert out.model.kind == "spherical"
+    # Chosen by cross-validation, the singular candidate is named and left out.
+    with pytest.warns(UserWarning, match="gaussian, nugget fitted candidate was skipped"):
+        out = interpolate("ph", coords, values, coords[:2] + 5.0,
+                          replace(settings, selection="cross-validation"))
+    assert out.model.kind == "spherical"
+    assert any(c.skipped for c in out.candidates if c.model.kind == "gaussian")
 
 
 def test_lab_error_sets_the_least_nugget():
@@ -295,7 +307,7 @@ def test_constant_property_is_mapped_as_that_constant():
         assert np.isnan(out.cv.msdr)
     summary = json.loads(json.dumps(out.as_dict()))
     assert summary["kind"] == "constant" and summary["model"]["kind"] == "constant"
-    assert summary["model"]["sill"] == 0.0 and summary["candidates"] == {}
+    assert summary["model"]["sill"] == 0.0 and summary["candidates"] == []
     assert out.model(np.array([0.0, 100.0])).tolist() == [0.0, 0.0]
 
 
@@ -311,7 +323,7 @@ def test_one_slip_is_named_with_id_and_row_and_the_flat_fit_explained():
     rows = np.arange(len(coords)) + 2
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")
-        out = interpolate("total_p", coords, total_p, coords[::9] + 5.0, ids=ids, rows=rows)
+        out = interpolate("total_p", coords, total_p, coords[::9] + 5.0, SSE, ids=ids, rows=rows)
     texts = [str(w.message) for w in seen]
     assert any("S-017 (row 19)" in t and "potential outliers" in t and "kept" in t for t in texts)
     assert any("is pure nugget" in t and "field mean" in t for t in texts)
@@ -327,7 +339,7 @@ def test_one_slip_is_named_with_id_and_row_and_the_flat_fit_explained():
 
     with pytest.warns(PmapWarning, match="S-017 .*left out and the variogram refitted"):
         dropped = interpolate("total_p", coords, total_p, coords[::9] + 5.0,
-                              KrigingSettings(drop_outliers=True), ids=ids, rows=rows)
+                              replace(SSE, drop_outliers=True), ids=ids, rows=rows)
     assert dropped.cv.n == len(coords) - 1 and dropped.diagnostics["n_dropped"] == 1
     assert all(o.dropped for o in dropped.outliers if o.id == "S-017")
     assert dropped.diagnostics["no_structure"] is False
