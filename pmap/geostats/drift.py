@@ -537,8 +537,9 @@ def universal_k_fold(
         collinear drift columns, a numerically singular covariance matrix, or a fold whose
         removal leaves the drift undetermined.
     """
+    coords = _points(coords, "coords")
+    n = coords.shape[0]
     folds = np.asarray(folds)
-    n = np.asarray(values).shape[0] if np.ndim(values) == 1 else -1
     if folds.shape != (n,) or folds.dtype.kind not in "iu":
         raise ValueError(
             f"folds must be integer labels of shape ({n},), got {folds.dtype} {folds.shape}"

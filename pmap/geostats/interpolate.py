@@ -538,13 +538,19 @@ def _fit(
             systems[id(cand)] = system
         return cand
 
+    kinds = settings.models
+    if k is not None and "matern" in kinds and len(kinds) > 1:
+        kinds = tuple(m for m in kinds if m != "matern")
+        notes.append(f"{name}: the matern family is not tried with local kriging (its Bessel "
+                     "function has no compiled kernel and would take minutes on dense data); "
+                     "the stable family spans the same range of shapes")
     for log in _transforms(name, values, settings):
         kriged = np.log(values) if log else values
         emp = _empirical(coords, kriged, settings, subsample)
         floor = nugget_floor(name, values, log, settings)
         empiricals[log], floors[log] = emp, floor
         fitted: list[Candidate] = []
-        for kind in settings.models:
+        for kind in kinds:
             options = (("fitted", None), ("lab error", floor)) if by_cv else (("fitted", None),)
             free_nugget = np.inf
             for nugget, fixed in options:

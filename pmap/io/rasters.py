@@ -14,6 +14,7 @@ import tempfile
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from affine import Affine
@@ -21,10 +22,10 @@ from affine import Affine
 from pmap._version import __version__
 from pmap.errors import ConfigError, InputError
 from pmap.grid import NODATA, GridSpec
-from pmap.io.crs import normalise_crs
+from pmap.io.crs import normalise_crs, to_pyproj
 
 __all__ = ["CLASS_NODATA", "class_colours", "write_cog", "RasterInfo", "read_raster", "pmap_version",
-           "read_onto_grid"]
+           "read_onto_grid", "sample_at_points"]
 
 #: Value written for cells outside the field in class (uint8) rasters.
 CLASS_NODATA: int = 0
@@ -204,6 +205,14 @@ def read_raster(path: str | Path) -> tuple[np.ndarray, RasterInfo, dict[str, str
     return data, info, tags
 
 
+def _require_crs(src: Any, path: Path) -> None:
+    """Raise :class:`InputError` naming ``path`` when the open raster ``src`` has no CRS."""
+    if src.crs is None:
+        raise InputError(
+            f"{path}: the raster has no CRS; assign the one its coordinates are in "
+            f"(e.g. gdal_edit.py -a_srs EPSG:<code> {path.name}) and run again")
+
+
 _RESAMPLING = ("nearest", "bilinear", "cubic", "cubic_spline", "lanczos", "average", "mode")
 
 
@@ -257,10 +266,7 @@ def read_onto_grid(
     out = np.full(grid.shape, np.nan, dtype=np.float64)
     try:
         with rasterio.open(path) as src:
-            if src.crs is None:
-                raise InputError(
-                    f"{path}: the raster has no CRS; assign the one its coordinates are in "
-                    f"(e.g. gdal_edit.py -a_srs EPSG:<code> {path.name}) and run again")
+            _require_crs(src, path)
             reproject(
                 source=rasterio.band(src, 1), destination=out, src_nodata=src.nodata,
                 dst_transform=grid.transform, dst_crs=dst_crs, dst_nodata=np.nan,
@@ -279,4 +285,71 @@ def read_onto_grid(
             f"{path}: the raster covers {share:.1%} of the field ({n_covered} of {n_inside} "
             f"cells with a value; its extent in {grid.crs} is ({extent}), the field's grid "
             f"({field})); give a raster that covers the whole field")
+    return out
+
+
+def sample_at_points(path: str | Path, coords: np.ndarray, crs: Any) -> np.ndarray:
+    """Band 1 of a user raster at points: the value of the raster cell holding each point.
+
+    The points are transformed from ``crs`` to the raster's CRS (pyproj, x/y order), then
+    located with the raster's inverse geotransform, as ``DatasetReader.index`` does (floor):
+    in a north-up raster a point on a cell edge belongs to the cell east / south of it.
+    No interpolation.
+
+    Parameters
+    ----------
+    path : str or Path
+        A raster GDAL reads (GeoTIFF) in any CRS; it must carry one.
+    coords : numpy.ndarray, shape (n, 2)
+        x and y of the points in ``crs`` (m for a projected run CRS); finite.
+    crs : str, pyproj.CRS or rasterio CRS
+        The CRS of ``coords`` (the run's CRS), e.g. ``"EPSG:32616"``.
+
+    Returns
+    -------
+    numpy.ndarray of float64, shape (n,)
+        Values in the raster's own unit; NaN for points outside the raster, on its nodata
+        (or masked) cells, or that cannot be transformed to its CRS.
+
+    Raises
+    ------
+    ValueError
+        ``coords`` not of shape (n, 2) or not finite.
+    pmap.errors.InputError
+        The file cannot be read or has no CRS, or ``crs`` cannot be parsed.
+    """
+    import rasterio
+    from pyproj import Transformer
+    from rasterio.errors import RasterioError
+    from rasterio.windows import Window
+
+    coords = np.asarray(coords, dtype=float)
+    if coords.ndim != 2 or coords.shape[1] != 2:
+        raise ValueError(f"coords must have shape (n, 2), got {coords.shape}")
+    if not np.all(np.isfinite(coords)):
+        raise ValueError("coords must be finite (no NaN or inf)")
+    path = Path(path)
+    run_crs = to_pyproj(crs)
+    out = np.full(coords.shape[0], np.nan, dtype=np.float64)
+    try:
+        with rasterio.open(path) as src:
+            _require_crs(src, path)
+            to_raster = Transformer.from_crs(run_crs, to_pyproj(src.crs), always_xy=True)
+            x, y = to_raster.transform(coords[:, 0], coords[:, 1], errcheck=False)
+            x, y = np.asarray(x, float), np.asarray(y, float)
+            inv = ~src.transform
+            col_f, row_f = inv.a * x + inv.b * y + inv.c, inv.d * x + inv.e * y + inv.f
+            ok = np.isfinite(col_f) & np.isfinite(row_f)
+            col = np.full(out.shape, -1, dtype=np.int64)
+            row = np.full(out.shape, -1, dtype=np.int64)
+            col[ok], row[ok] = np.floor(col_f[ok]), np.floor(row_f[ok])
+            inside = ok & (col >= 0) & (col < src.width) & (row >= 0) & (row < src.height)
+            if inside.any():
+                r0, r1 = int(row[inside].min()), int(row[inside].max()) + 1
+                c0, c1 = int(col[inside].min()), int(col[inside].max()) + 1
+                block = src.read(1, window=Window(c0, r0, c1 - c0, r1 - r0), masked=True)
+                picked = block[row[inside] - r0, col[inside] - c0]
+                out[inside] = np.ma.filled(picked.astype(np.float64), np.nan)
+    except RasterioError as exc:
+        raise InputError(f"{path}: cannot read the raster ({exc}); give a GeoTIFF") from exc
     return out

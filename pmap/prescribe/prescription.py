@@ -101,12 +101,28 @@ def stp_quantile(mean: ArrayLike, variance: ArrayLike, q: float, *, log: bool) -
 
 
 def sample_spacing_m(sample_xy: ArrayLike) -> float:
-    """Median distance (m) from each sample to its nearest neighbour; NaN for < 2 samples."""
+    """Typical sample spacing (m); NaN for < 2 samples.
+
+    The larger of the median distance from each sample to its nearest neighbour and the
+    spacing of a square grid of the same density over the samples' convex hull,
+    ``sqrt(hull area / n)``.  On a regular grid of spacing d both are about d; scattered
+    samples (on-the-go sensor readings) have nearest neighbours about half as far apart as
+    their density says (median ``0.47 / sqrt(density)`` for random points), which would
+    leave cells between them without a rate.
+    """
+    from scipy.spatial import ConvexHull, QhullError
+
     xy = np.asarray(sample_xy, dtype=float)
     if len(xy) < 2:
         return float("nan")
     d, _ = cKDTree(xy).query(xy, k=2)
-    return float(np.median(d[:, 1]))
+    spacing = float(np.median(d[:, 1]))
+    if len(xy) >= 3:
+        try:
+            spacing = max(spacing, float(np.sqrt(ConvexHull(xy).volume / len(xy))))
+        except QhullError:              # collinear samples: no hull area
+            pass
+    return spacing
 
 
 def distance_to_samples(cell_xy: ArrayLike, sample_xy: ArrayLike) -> np.ndarray:

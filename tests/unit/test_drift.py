@@ -16,7 +16,9 @@ from pmap.geostats.drift import (
     DriftKrigingResult,
     linear_drift,
     regression_residuals,
+    universal_k_fold,
     universal_kriging,
+    universal_leave_one_out,
 )
 from pmap.geostats.kriging import SingularSystemError, ordinary_kriging
 from pmap.geostats.variogram import VariogramModel, empirical_variogram, fit_variogram
@@ -372,3 +374,97 @@ def test_linear_drift_centres_and_scales():
         linear_drift(xy, scale=0.0)
     with pytest.raises(ValueError, match="coincide"):
         linear_drift(np.ones((3, 2)))
+
+
+_CV_MODELS = [
+    VariogramModel("spherical", 0.08, 0.15, 870.0),
+    VariogramModel("exponential", 0.05, 0.18, 1200.0, ratio=0.5, angle=40.0),
+]
+
+
+def _cv_drift(coords: np.ndarray, dist: np.ndarray, kind: str) -> np.ndarray:
+    if kind == "linear":
+        return linear_drift(coords, coords.mean(axis=0), 1000.0)
+    if kind == "covariate":
+        return np.sqrt(dist)
+    return np.empty((coords.shape[0], 0))
+
+
+@pytest.mark.parametrize("model", _CV_MODELS, ids=["isotropic", "anisotropic"])
+@pytest.mark.parametrize("drift", ["linear", "covariate", "none"])
+def test_leave_one_out_matches_brute_force(meuse, meuse_dist, model, drift):
+    coords, zinc = meuse
+    z = np.log(zinc)
+    ds = _cv_drift(coords, meuse_dist, drift)
+    est, var = universal_leave_one_out(coords, z, model, ds)
+    n = z.size
+    ref_est, ref_var = np.empty(n), np.empty(n)
+    for i in range(n):
+        keep = np.arange(n) != i
+        res = universal_kriging(coords[keep], z[keep], coords[i : i + 1], model,
+                                drift_samples=ds[keep], drift_targets=ds[i : i + 1])
+        ref_est[i], ref_var[i] = res.estimate[0], res.variance[0]
+    # common practice, no source: the identity must equal refitting-free re-kriging.
+    np.testing.assert_allclose(est, ref_est, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(var, ref_var, rtol=0, atol=1e-9)
+    assert np.all(var > model.nugget)
+    assert np.max(np.abs(est - z)) > 0.1
+
+
+@pytest.mark.parametrize("model", _CV_MODELS, ids=["isotropic", "anisotropic"])
+@pytest.mark.parametrize("drift", ["linear", "covariate"])
+def test_k_fold_matches_brute_force(meuse, meuse_dist, model, drift):
+    coords, zinc = meuse
+    z = np.log(zinc)
+    ds = _cv_drift(coords, meuse_dist, drift)
+    labels = np.array([3, 7, -1, 10, 2])
+    folds = labels[np.random.default_rng(8).integers(0, 5, z.size)]
+    est, var = universal_k_fold(coords, z, model, ds, folds)
+    ref_est, ref_var = np.empty(z.size), np.empty(z.size)
+    for label in labels:
+        out = folds == label
+        assert 10 < out.sum() < 60
+        res = universal_kriging(coords[~out], z[~out], coords[out], model,
+                                drift_samples=ds[~out], drift_targets=ds[out])
+        ref_est[out], ref_var[out] = res.estimate, res.variance
+    # common practice, no source: the block identity must equal re-kriging each fold.
+    np.testing.assert_allclose(est, ref_est, rtol=0, atol=1e-9)
+    np.testing.assert_allclose(var, ref_var, rtol=0, atol=1e-9)
+    # Holding out more samples than one moves the predictions.
+    loo_est, loo_var = universal_leave_one_out(coords, z, model, ds)
+    assert np.max(np.abs(loo_est - est)) > 1e-3
+    assert np.mean(var) > np.mean(loo_var)
+
+
+def test_k_fold_with_singleton_folds_is_leave_one_out():
+    coords, noise, _ = _correlated_field(60, 9)
+    covariate = np.cos(coords[:, 1] / 200.0)
+    values = 3.0 + covariate + noise
+    model = VariogramModel("exponential", 0.001, 0.01, 300.0)
+    est, var = universal_k_fold(coords, values, model, covariate, np.arange(60)[::-1])
+    loo_est, loo_var = universal_leave_one_out(coords, values, model, covariate)
+    np.testing.assert_allclose(est, loo_est, rtol=0, atol=1e-12)
+    np.testing.assert_allclose(var, loo_var, rtol=0, atol=1e-14)
+
+
+def test_cross_validation_refuses_undetermined_drift():
+    coords, noise, _ = _correlated_field(40, 2)
+    model = VariogramModel("exponential", 0.001, 0.01, 300.0)
+    spike = np.zeros(40)
+    spike[17] = 1.0  # without sample 17 this covariate is constant
+    with pytest.raises(ModelFitError, match=r"sample\(s\) \[17\]"):
+        universal_leave_one_out(coords, noise, model, spike)
+    step = (coords[:, 0] > 500.0).astype(float)
+    folds = np.where(step > 0, 1, 0)  # each fold takes one level of the step
+    with pytest.raises(ModelFitError, match="without fold 0"):
+        universal_k_fold(coords, noise, model, step, folds)
+    with pytest.raises(ValueError, match="integer labels"):
+        universal_k_fold(coords, noise, model, step, folds.astype(float))
+    with pytest.raises(ValueError, match="integer labels"):
+        universal_k_fold(coords, noise, model, step, folds[:-1])
+    with pytest.raises(ModelFitError, match="at least 3 samples left after holding out 39"):
+        universal_k_fold(coords, noise, model, step, np.r_[np.zeros(39, int), 1])
+    dup = coords.copy()
+    dup[1] = dup[0]
+    with pytest.raises(ModelFitError, match="duplicate"):
+        universal_leave_one_out(dup, noise, model, step)

@@ -1,4 +1,4 @@
-"""User rasters (elevation and the like) read onto the run's grid: pmap.io.rasters.read_onto_grid."""
+"""User rasters (elevation and the like) on the run's grid and at points: pmap.io.rasters."""
 
 from __future__ import annotations
 
@@ -10,7 +10,7 @@ from rasterio.transform import from_origin
 
 from pmap.errors import InputError
 from pmap.grid import GridSpec
-from pmap.io.rasters import read_onto_grid
+from pmap.io.rasters import read_onto_grid, sample_at_points
 
 UTM = "EPSG:32616"
 # A 400 m x 300 m field near 87 W, 40 N (UTM zone 16N), 10 m cells.
@@ -141,3 +141,136 @@ def test_aligned_integer_raster_with_nearest_is_copied(tmp_path):
         dst.write(values, 1)
     got = read_onto_grid(path, grid, resampling="nearest")
     np.testing.assert_array_equal(got, values.astype(float))
+
+
+def _write_utm_raster(path, *, nodata=None, dtype="float32"):
+    """A 7 m UTM raster, origin off the 10 m grid, whose cell (r, c) holds 1000 r + c."""
+    west, north, res = X0 - 46.5, Y0 + 353.5, 7.0
+    height, width = 70, 80
+    data = (1000 * np.arange(height)[:, None] + np.arange(width)[None, :]).astype(dtype)
+    profile = {"driver": "GTiff", "width": width, "height": height, "count": 1, "dtype": dtype,
+               "crs": UTM, "transform": from_origin(west, north, res, res), "nodata": nodata}
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(data, 1)
+    return path, west, north, res
+
+
+def test_points_take_the_value_of_their_utm_cell(tmp_path):
+    path, west, north, res = _write_utm_raster(tmp_path / "cells.tif")
+    rows, cols = np.array([0, 5, 69, 33, 12]), np.array([0, 79, 3, 40, 12])
+    # Somewhere inside each cell, not at its centre: (0.1, 0.9) of the way across.
+    x = west + res * (cols + np.array([0.1, 0.9, 0.5, 0.01, 0.99]))
+    y = north - res * (rows + np.array([0.9, 0.1, 0.5, 0.99, 0.01]))
+    got = sample_at_points(path, np.column_stack([x, y]), UTM)
+    assert got.dtype == np.float64 and got.shape == (5,)
+    np.testing.assert_array_equal(got, 1000.0 * rows + cols)
+    # Points beyond each edge of the raster (and one inside) are NaN / a value.
+    outside = np.array([[west - 0.5, north - 10.0], [west + 80 * res + 0.5, north - 10.0],
+                        [west + 10.0, north + 0.5], [west + 10.0, north - 70 * res - 0.5],
+                        [west + 3.0, north - 3.0]])
+    got = sample_at_points(path, outside, "epsg:32616")
+    assert np.isnan(got[:4]).all() and got[4] == 0.0
+
+
+def test_points_in_another_crs_are_reprojected(tmp_path):
+    path, west, north, res = _write_utm_raster(tmp_path / "cells.tif")
+    rows, cols = np.array([2, 50, 61]), np.array([7, 8, 77])
+    x, y = west + res * (cols + 0.5), north - res * (rows + 0.5)
+    # Source: pyproj (PROJ) transformation of the cell centres to longitude/latitude.
+    lon, lat = Transformer.from_crs(UTM, "EPSG:4326", always_xy=True).transform(x, y)
+    got = sample_at_points(path, np.column_stack([lon, lat]), "EPSG:4326")
+    np.testing.assert_array_equal(got, 1000.0 * rows + cols)
+    # x/y order: swapping the coordinates lands far outside the raster.
+    assert np.isnan(sample_at_points(path, np.column_stack([lat, lon]), "EPSG:4326")).all()
+
+
+def test_lonlat_raster_sampled_at_utm_points(tmp_path):
+    path = _write_lonlat_raster(tmp_path / "plane.tif")
+    rng = np.random.default_rng(1)
+    pts = np.column_stack([X0 + 400 * rng.random(300), Y0 + 300 * rng.random(300)])
+    got = sample_at_points(path, pts, UTM)
+    # Source: pyproj (PROJ) longitudes/latitudes of the points; the cell holding a point
+    # is found from them and the raster's geotransform, its value read from the file.
+    lon, lat = Transformer.from_crs(UTM, "EPSG:4326", always_xy=True).transform(pts[:, 0],
+                                                                                  pts[:, 1])
+    with rasterio.open(path) as src:
+        data, t = src.read(1), src.transform
+    col = np.floor((lon - t.c) / t.a).astype(int)
+    row = np.floor((lat - t.f) / t.e).astype(int)
+    np.testing.assert_array_equal(got, data[row, col].astype(float))
+    # The nearest cell's centre is within half a pixel of the point: the plane differs by at
+    # most 0.5 * 0.0001 * (1000 + 2000) = 0.15 units; a transposed read would not.
+    assert np.max(np.abs(got - _lonlat_plane(lon, lat))) <= 0.15
+    assert np.ptp(got) > 5
+
+
+def test_nodata_cells_are_nan(tmp_path):
+    path = _write_lonlat_raster(tmp_path / "holes.tif", nodata=-9999.0,
+                                hole=(slice(None), slice(0, 55)))
+    pts = _grid().inside_coords()
+    got = sample_at_points(path, pts, UTM)
+    lon, _ = Transformer.from_crs(UTM, "EPSG:4326", always_xy=True).transform(pts[:, 0],
+                                                                              pts[:, 1])
+    with rasterio.open(path) as src:
+        col = np.floor((lon - src.transform.c) / src.transform.a)
+    assert (col < 55).sum() > 100 and (col >= 55).sum() > 100
+    assert np.isnan(got[col < 55]).all()
+    assert np.isfinite(got[col >= 55]).all() and (got[col >= 55] > -9000).all()
+    # Integer raster: its nodata value too becomes NaN, the rest the stored integer.
+    ipath, west, north, res = _write_utm_raster(tmp_path / "int.tif", nodata=1005,
+                                                dtype="int16")
+    xy = np.array([[west + 5.5 * res, north - 1.5 * res], [west + 6.5 * res, north - 1.5 * res]])
+    got = sample_at_points(ipath, xy, UTM)
+    assert np.isnan(got[0]) and got[1] == 1006.0
+
+
+@pytest.mark.parametrize("raster", ["utm", "lonlat"])
+def test_points_agree_with_nearest_read_onto_grid(tmp_path, raster):
+    grid = _grid()
+    if raster == "utm":
+        path = _write_utm_raster(tmp_path / "r.tif", nodata=-1.0)[0]
+    else:
+        path = _write_lonlat_raster(tmp_path / "r.tif")
+    on_grid = read_onto_grid(path, grid, resampling="nearest")
+    x, y = grid.cell_centres()
+    at_points = sample_at_points(path, np.column_stack([x.ravel(), y.ravel()]), UTM)
+    at_points = at_points.reshape(grid.shape)
+    if raster == "utm":
+        # Same CRS: the warp maps cell centres exactly; every cell agrees.
+        np.testing.assert_array_equal(at_points, on_grid)
+        return
+    # GDAL's approximate transformer (up to 1/8 pixel) may pick the neighbour of a cell
+    # centre within 1/8 pixel of a raster cell edge; everywhere else the two agree.
+    lon, lat = Transformer.from_crs(UTM, "EPSG:4326", always_xy=True).transform(x, y)
+    with rasterio.open(path) as src:
+        t = src.transform
+    fc, fr = (lon - t.c) / t.a % 1.0, (lat - t.f) / t.e % 1.0
+    clear = (np.minimum(fc, 1 - fc) > 0.2) & (np.minimum(fr, 1 - fr) > 0.2)
+    assert clear.mean() > 0.25
+    np.testing.assert_array_equal(at_points[clear], on_grid[clear])
+    assert np.mean(at_points == on_grid) > 0.9
+
+
+def test_sampling_errors_name_the_file(tmp_path):
+    pts = np.array([[X0 + 5.0, Y0 + 5.0]])
+    nocrs = tmp_path / "nocrs.tif"
+    profile = {"driver": "GTiff", "width": 4, "height": 4, "count": 1, "dtype": "float32",
+               "transform": from_origin(X0, Y0 + 40, 10, 10)}
+    with rasterio.open(nocrs, "w", **profile) as dst:
+        dst.write(np.ones((4, 4), np.float32), 1)
+    with pytest.raises(InputError, match=r"nocrs\.tif: the raster has no CRS"):
+        sample_at_points(nocrs, pts, UTM)
+    bad = tmp_path / "dem.tif"
+    bad.write_text("not a raster\n")
+    with pytest.raises(InputError, match=r"dem\.tif: cannot read the raster"):
+        sample_at_points(bad, pts, UTM)
+    with pytest.raises(InputError, match=r"missing\.tif: cannot read"):
+        sample_at_points(tmp_path / "missing.tif", pts, UTM)
+    good = _write_utm_raster(tmp_path / "ok.tif")[0]
+    with pytest.raises(InputError, match="cannot read a CRS"):
+        sample_at_points(good, pts, "EPSG:not-a-code")
+    with pytest.raises(ValueError, match=r"shape \(n, 2\)"):
+        sample_at_points(good, pts[0], UTM)
+    with pytest.raises(ValueError, match="finite"):
+        sample_at_points(good, np.array([[np.nan, Y0]]), UTM)
+    assert sample_at_points(good, np.empty((0, 2)), UTM).shape == (0,)

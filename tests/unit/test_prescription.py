@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from scipy import stats
+from scipy.spatial import cKDTree
 
 from pmap.errors import InputError
 from pmap.geostats.kriging import lognormal_back_transform, lognormal_log_moments
@@ -70,6 +71,22 @@ def test_island_200_m_from_a_100_m_grid_gets_no_rate():
     with pytest.raises(InputError):
         rx.rate_coverage(d, 0.0)
     assert np.isnan(rx.sample_spacing_m(samples[:1]))
+
+
+def test_scattered_dense_samples_leave_no_holes_without_a_rate():
+    # Source: Clark & Evans (1954), Ecology 35: random points of density lambda have nearest
+    # neighbours at a mean 0.5 / sqrt(lambda), half the spacing of a grid of that density,
+    # so 1.5 nearest-neighbour spacings would leave scattered cells without a rate.
+    rng = np.random.default_rng(0)
+    samples = rng.random((20_000, 2)) * 1000.0
+    d, _ = cKDTree(samples).query(samples, k=2)
+    assert np.median(d[:, 1]) == pytest.approx(0.47 * np.sqrt(1e6 / 20_000), rel=0.05)
+    spacing = rx.sample_spacing_m(samples)
+    assert spacing == pytest.approx(np.sqrt(1e6 / 20_000), rel=0.02)
+    cx, cy = np.meshgrid(np.arange(2.5, 1000, 5.0), np.arange(2.5, 1000, 5.0))
+    cells = np.column_stack([cx.ravel(), cy.ravel()])
+    covered = rx.rate_coverage(rx.distance_to_samples(cells, samples), 1.5 * spacing)
+    assert covered.mean() > 0.998
 
 
 def test_uncovered_cells_form_not_sampled_patches_with_the_no_data_rate():
