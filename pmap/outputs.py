@@ -74,6 +74,8 @@ LAYERS: dict[str, LayerInfo] = {
         "Fixation risk class", "class", classes=RISK_CLASS_LABELS, colours=_RISK_COLOURS),
     "stp_deficiency_probability": LayerInfo(
         "Probability soil-test P is below the critical level", "probability 0-1", "cividis"),
+    "fixation_high_probability": LayerInfo(
+        "Probability of high fixation risk (simulations)", "probability 0-1", "cividis"),
     "zones": LayerInfo("Soil-test P zones", "class"),
     "p2o5_rate": LayerInfo("P2O5 rate per cell", "kg P2O5/ha", "viridis"),
     "p2o5_zone_rate": LayerInfo("P2O5 rate by zone (prescription)", "kg P2O5/ha", "viridis"),
@@ -338,6 +340,7 @@ def write_outputs(
                 shown, classes = _discrete_rates(array, info.unit)
                 colours = None
             limits = (0.0, 1.0) if name in ("stp_deficiency_probability",
+                                            "fixation_high_probability",
                                             "fixation_risk") else (None, None)
             maps.plot_layer(
                 tmp / "maps" / f"{name}.png", shown, grid,

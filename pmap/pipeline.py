@@ -376,7 +376,18 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     # The soil-test P that drives zones and rates, its uncertainty, and the rule's method.
     stp, method, stp_source = _rate_driver(estimates, pools, inputs.samples.stp_method, config)
     basis = rx.BASIS_MEASURED if stp_source["source"] == "measured" else rx.BASIS_MODEL
-    deficiency, driver, risk_note = _deficiency(kriged.get("stp"), stp, method, rule)
+    realisations = _simulations(inputs, kriged, grid, config)
+    if "ph" in realisations:
+        high = np.zeros(ph.shape)
+        for ph_r in realisations["ph"]:
+            high += fixation_risk(ph_r, config.fixation, config.soil, **soil_inputs,
+                                  labile_p_mg_kg=pools.available if pools is not None else None,
+                                  ).risk_class == 3
+        realisations["fixation_high"] = high / len(realisations["ph"])
+    deficiency, driver, risk_note = _deficiency(kriged.get("stp"), stp, method, rule,
+                                                realisations.get("stp"))
+    if "stp" in realisations:
+        stp_source["probability_basis"] = realisations["note"]
     if risk_note:
         stp_source["risk_aware_rule"] = risk_note
     rule_stp = driver
@@ -398,7 +409,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     coverage = {
         "sample_spacing_m": spacing, "max_distance_from_sample_m": max_distance,
         "rule": ("rates.max_distance_from_sample_m" if rule.max_distance_from_sample_m
-                 else f"{rule.max_distance_spacings:g} x the median sample spacing"),
+                 else f"{rule.max_distance_spacings:g} x the sample spacing"),
         "area_without_rate_ha": float((~covered).sum()) * grid.cell_area_ha,
     }
     if not covered.all():
@@ -478,6 +489,8 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     layers["fixation_risk"] = grid.fill(risk.index)
     layers["fixation_mechanism"] = grid.fill(risk.mechanism, outside=0).astype(np.uint8)
     layers["fixation_class"] = grid.fill(risk.risk_class, outside=0).astype(np.uint8)
+    if "fixation_high" in realisations:
+        layers["fixation_high_probability"] = grid.fill(realisations["fixation_high"])
     zone_class = np.array([0] + [p.class_id for p in patches], dtype=np.uint8)
     layers["zones"] = zone_class[labels]
     layers["p2o5_rate"] = grid.fill(rate_cells)
@@ -534,15 +547,62 @@ def _table_rates(patches: list[rx.Patch], clusters: Any, config: FieldConfig,
     return out
 
 
+#: Most realisation values held at once (realisations x cells) for probability maps.
+MAX_SIMULATED_VALUES = 50_000_000
+
+
+def _simulations(inputs: FieldInputs, kriged: dict[str, Interpolation], grid: GridSpec,
+                 config: FieldConfig) -> dict[str, Any]:
+    """Conditional simulations of pH and soil-test P when kriging.probability = 'simulation'.
+
+    Each property is simulated with the family its kriging chose, refitted to the normal
+    scores of its samples; the realisations are in the property's units.
+    """
+    settings = config.kriging
+    if settings.probability != "simulation":
+        return {}
+    from pmap.geostats.simulation import simulate_property
+
+    targets = grid.inside_coords()
+    if settings.realisations * targets.shape[0] > MAX_SIMULATED_VALUES:
+        raise ConfigError(
+            f"kriging.realisations = {settings.realisations} on {targets.shape[0]:,} cells would "
+            f"hold more than {MAX_SIMULATED_VALUES:,} simulated values: lower "
+            "kriging.realisations, coarsen grid.cell_size_m or use kriging.probability = "
+            "'kriging'")
+    out: dict[str, Any] = {}
+    notes = []
+    for name in ("stp", "ph"):
+        interp = kriged.get(name)
+        if interp is None or interp.kind != "kriged":
+            continue
+        values = inputs.samples.values[name]
+        ok = np.isfinite(values)
+        real, model = simulate_property(
+            inputs.samples.coords[ok], values[ok], targets, interp.model.kind,
+            n_realisations=settings.realisations, seed=settings.seed,
+            neighbours=settings.neighbours, n_bins=settings.n_bins,
+            cutoff_fraction=settings.cutoff_fraction,
+            max_variogram_samples=settings.variogram_max_samples)
+        out[name] = real
+        notes.append(f"{name}: {settings.realisations} sequential Gaussian simulations (seed "
+                     f"{settings.seed}, {settings.neighbours} neighbours, normal-score "
+                     f"{model.kind} variogram, range {model.range:.0f} m)")
+    out["note"] = "; ".join(notes)
+    return out
+
+
 def _deficiency(
     interp: Interpolation | None, stp: np.ndarray, method: str, rule: RateRule,
+    realisations: np.ndarray | None = None,
 ) -> tuple[np.ndarray | None, np.ndarray, str]:
     """Probability of deficiency per cell (lab method) and the soil test the rule is fed.
 
     The probability that soil-test P lies below the rule's critical level comes from the
-    kriging distribution of the lab's soil test (log space when it was log-kriged), with the
-    critical level expressed in the lab's method.  With the risk-aware option the rule is
-    fed the soil test's quantile at the threshold instead of the estimate.
+    kriging distribution of the lab's soil test (log space when it was log-kriged), or,
+    given ``realisations`` (n, cells) of it, from the share of them below the level; the
+    critical level is expressed in the lab's method.  With the risk-aware option the rule
+    is fed the soil test's quantile at the threshold instead of the estimate.
     """
     if interp is None:
         if rule.deficiency_probability_threshold is not None:
@@ -554,15 +614,24 @@ def _deficiency(
     if rule.soil_test_method != method:
         critical = float(convert_soil_test(np.array([critical]), rule.soil_test_method,
                                            method)[0])
-    mean, variance = interp.kriged_moments()
-    probability = rx.deficiency_probability(mean, variance, critical, log=interp.log)
     q = rule.deficiency_probability_threshold
+    if realisations is not None:
+        from pmap.geostats.simulation import realisation_probability, realisation_quantile
+
+        probability = realisation_probability(realisations, critical)
+        quantile = None if q is None else realisation_quantile(realisations, q)
+        where = f"{len(realisations)} conditional simulations"
+    else:
+        mean, variance = interp.kriged_moments()
+        probability = rx.deficiency_probability(mean, variance, critical, log=interp.log)
+        quantile = None if q is None else rx.stp_quantile(mean, variance, q, log=interp.log)
+        where = "kriging distribution"
     if q is None:
         return probability, stp, ""
     note = (f"RISK-AWARE RULE: the rule is applied to the soil-test P that each cell falls "
-            f"below with probability {q:g} (kriging distribution), so a cell counts as below "
+            f"below with probability {q:g} ({where}), so a cell counts as below "
             f"critical when its probability of deficiency exceeds {q:g}")
-    return probability, rx.stp_quantile(mean, variance, q, log=interp.log), note
+    return probability, quantile, note
 
 
 def _polygons_for(

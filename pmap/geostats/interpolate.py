@@ -164,7 +164,21 @@ class KrigingSettings:
     )
     seed: int = field(
         default=0,
-        metadata={"unit": "", "doc": "seed of the variogram subsample and the k-fold folds",
+        metadata={"unit": "", "doc": "seed of the variogram subsample, the k-fold folds and the "
+                  "simulations", "source": "common practice, no source"},
+    )
+    probability: str = field(
+        default="kriging",
+        metadata={"unit": "", "doc": "where probability maps (deficiency of soil-test P, high "
+                  "fixation risk) come from: 'kriging' (the normal kriging distribution of each "
+                  "cell) or 'simulation' (kriging.realisations conditional sequential Gaussian "
+                  "simulations in normal scores, which also carry the joint uncertainty of pH "
+                  "through the fixation model)", "source": "common practice, no source"},
+    )
+    realisations: int = field(
+        default=100,
+        metadata={"unit": "", "doc": "realisations simulated when kriging.probability = "
+                  "'simulation'; probabilities are known to about 0.5 / sqrt(realisations)",
                   "source": "common practice, no source"},
     )
     n_bins: int = field(
@@ -274,6 +288,10 @@ class KrigingSettings:
         check_whole("kriging.variogram_max_samples", self.variogram_max_samples, ge=100)
         check_whole("kriging.k_folds", self.k_folds, ge=2)
         check_whole("kriging.seed", self.seed, ge=0)
+        if self.probability not in ("kriging", "simulation"):
+            raise ConfigError("kriging.probability must be one of ['kriging', 'simulation'], "
+                              f"got {self.probability!r}")
+        check_whole("kriging.realisations", self.realisations, ge=10)
         check_whole("kriging.n_bins", self.n_bins, ge=3)
         check_number("kriging.cutoff_fraction", self.cutoff_fraction, gt=0, le=1)
         if self.log_transform not in _LOG_CHOICES:

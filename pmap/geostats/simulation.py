@@ -44,6 +44,7 @@ __all__ = [
     "simulate_normal_scores",
     "realisation_probability",
     "realisation_quantile",
+    "simulate_property",
 ]
 
 # Smallest cumulative probability a normal score is given outside the data (score -7.03).
@@ -493,3 +494,52 @@ def realisation_quantile(realisations: np.ndarray, q: float | np.ndarray) -> np.
     if np.any(~((q_arr >= 0) & (q_arr <= 1))):
         raise ValueError(f"quantiles must be in [0, 1], got {q}")
     return np.quantile(real, q_arr, axis=0)
+
+
+def simulate_property(
+    coords: np.ndarray,
+    values: np.ndarray,
+    targets: np.ndarray,
+    kind: str,
+    *,
+    n_realisations: int,
+    seed: int,
+    neighbours: int = 16,
+    n_bins: int = 15,
+    cutoff_fraction: float = 1.0 / 3.0,
+    max_variogram_samples: int = 5000,
+) -> tuple[np.ndarray, VariogramModel]:
+    """Realisations of a property from its samples: normal scores, their variogram, SGS.
+
+    The normal scores of ``values`` get an empirical variogram (a seeded subsample of
+    ``max_variogram_samples`` when there are more samples) and a fitted ``kind`` model,
+    which, rescaled to a sill of 1 (the variance of normal scores; a variogram still rising
+    at the cutoff would otherwise overstate it), :func:`sequential_gaussian_simulation`
+    then uses.
+
+    Returns
+    -------
+    realisations : numpy.ndarray, shape (n_realisations, m)
+        Value units.
+    model_ns : VariogramModel
+        The variogram fitted to the normal scores.
+    """
+    from pmap.geostats.variogram import default_cutoff, empirical_variogram, fit_variogram
+
+    coords = np.asarray(coords, dtype=float)
+    transform = NormalScore.fit(np.asarray(values, dtype=float))
+    scores = transform.forward(values)
+    xy, sc = coords, scores
+    if coords.shape[0] > max_variogram_samples:
+        pick = np.random.default_rng(seed).choice(coords.shape[0], max_variogram_samples,
+                                                  replace=False)
+        xy, sc = coords[pick], scores[pick]
+    emp = empirical_variogram(xy, sc, cutoff=default_cutoff(xy, cutoff_fraction),
+                              n_bins=n_bins)
+    model = fit_variogram(emp, kind)
+    if model.sill > 0:      # normal scores have variance 1: the fitted shape, rescaled
+        model = model.with_sill_scaled(1.0 / model.sill)
+    realisations = sequential_gaussian_simulation(
+        coords, values, targets, model, n_realisations=n_realisations, seed=seed,
+        neighbours=neighbours, normal_score=transform)
+    return realisations, model

@@ -526,10 +526,11 @@ def fit_variogram(
     best: np.ndarray | None = None
     best_cost = np.inf
     g_far = float(np.mean(g[-max(1, g.size // 3):])) / scale
+    nug_starts = sorted({min(max(v, nug_lo * (1.0 + 1e-6)), 0.5 * (nug_lo + nug_hi_ls)
+                             if np.isfinite(nug_hi_ls) else np.inf)
+                         for v in (0.0, 0.5 * g[0] / scale)})
     for rng0 in (0.1, 0.25, 0.5, 1.0, 2.0):
-        for nug0 in (0.0, 0.5 * g[0] / scale):
-            nug0 = min(max(nug0, nug_lo * (1.0 + 1e-6)), 0.5 * (nug_lo + nug_hi_ls)
-                       if np.isfinite(nug_hi_ls) else np.inf)
+        for nug0 in nug_starts:
             x0 = np.array([nug0, max(g_far - nug0, 0.05), rng0])
             try:
                 sol = least_squares(residuals, x0, bounds=(lo, hi), method="trf",

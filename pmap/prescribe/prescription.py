@@ -138,7 +138,7 @@ def distance_to_samples(cell_xy: ArrayLike, sample_xy: ArrayLike) -> np.ndarray:
 def rate_coverage(distance: ArrayLike, max_m: float) -> np.ndarray:
     """Cells close enough to a sample to carry a rate: ``distance <= max_m`` (both m).
 
-    The configured default of ``max_m`` is 1.5 median sample spacings
+    The configured default of ``max_m`` is 1.5 sample spacings
     (:func:`sample_spacing_m`): on a regular grid of spacing d every point lies within
     d / sqrt(2) = 0.71 d of a sample, and within d of one when a single sample is missing,
     so 1.5 d tolerates a missing sample and a headland strip up to about one spacing past

@@ -218,8 +218,8 @@ class RateRule:
         metadata={
             "unit": "m",
             "doc": "cells farther than this from every sample get no rate (flagged \"not "
-            "sampled\"); unset = rates.max_distance_spacings x the median spacing of the "
-            "samples",
+            "sampled\"); unset = rates.max_distance_spacings x the sample spacing (the larger "
+            "of the median nearest-neighbour distance and sqrt(hull area / samples))",
             "source": "common practice, no source",
         },
     )
@@ -227,9 +227,8 @@ class RateRule:
         default=1.5,
         metadata={
             "unit": "sample spacings",
-            "doc": "default of rates.max_distance_from_sample_m in multiples of the median "
-            "nearest-neighbour spacing (on a regular grid every point lies within 0.71 "
-            "spacings of a sample)",
+            "doc": "default of rates.max_distance_from_sample_m in multiples of the sample "
+            "spacing (on a regular grid every point lies within 0.71 spacings of a sample)",
             "source": "common practice, no source",
         },
     )

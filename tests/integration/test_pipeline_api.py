@@ -250,3 +250,24 @@ def test_each_feature_runs_as_its_own_field(demo_inputs, tmp_path):
     assert (name1, name2) == ("Long Meadow", "Far Side")
     assert res1.config.field.name == "Long Meadow" and (out1 / "summary.json").is_file()
     assert isinstance(res2, pmap.PmapError) and "none of the" in str(res2)
+
+
+def test_simulated_probabilities_agree_with_the_kriging_distribution(demo_inputs, tmp_path):
+    # common practice, no source: with a Gaussian-like soil test, the share of conditional
+    # simulations below the critical level approaches the kriging distribution's probability
+    # (up to the normal-score transform and about 0.05 of Monte-Carlo error at 100 runs).
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=40.0)
+    by_kriging = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "k", config)
+    simulated = config.replace("kriging", probability="simulation", realisations=100)
+    by_sim = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "s", simulated)
+    inside = by_kriging.grid.mask
+    a = by_kriging.layers["stp_deficiency_probability"][inside]
+    b = by_sim.layers["stp_deficiency_probability"][inside]
+    assert np.corrcoef(a, b)[0, 1] > 0.95 and np.abs(a - b).mean() < 0.08
+    high = by_sim.layers["fixation_high_probability"][inside]
+    assert 0.0 <= high.min() and high.max() <= 1.0
+    assert "fixation_high_probability" not in by_kriging.layers
+    assert "sequential Gaussian simulations" in by_sim.stp_source["probability_basis"]
+    with pytest.raises(pmap.ConfigError, match="kriging.realisations"):
+        _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "x",
+             simulated.replace("grid", cell_size_m=2.0).replace("kriging", realisations=5000))
