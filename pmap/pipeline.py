@@ -166,9 +166,34 @@ def prepare_inputs(
     return FieldInputs(samples, boundary, grid, n_read, dropped, notes, crs_choice)
 
 
+def _covariates(samples: SampleTable, targets: np.ndarray, config: FieldConfig,
+                grid: GridSpec | None) -> dict[str, tuple[np.ndarray, np.ndarray]]:
+    """kriging.covariates read at the samples and at the targets (the grid's inside cells)."""
+    if not config.kriging.covariates:
+        return {}
+    if grid is None:
+        raise ConfigError("kriging.covariates needs the run's grid")
+    from pmap.io.rasters import read_onto_grid, sample_at_points
+
+    out = {}
+    for name, path in config.kriging.covariates.items():
+        at_samples = sample_at_points(path, samples.coords, grid.crs)
+        missing = ~np.isfinite(at_samples)
+        if missing.any():
+            shown = ", ".join(str(i) for i in samples.ids[missing][:10])
+            raise InputError(
+                f"kriging.covariates.{name} ({path}): {int(missing.sum())} sample(s) lie outside "
+                f"the raster or on its nodata ({shown}{', ...' if missing.sum() > 10 else ''}); "
+                "use a raster that covers every sample, or remove the covariate")
+        at_targets = (np.empty(0) if targets.shape[0] == 0
+                      else read_onto_grid(path, grid)[grid.mask])
+        out[name] = (at_samples, at_targets)
+    return out
+
+
 def krige_properties(
     samples: SampleTable, targets: np.ndarray, config: FieldConfig,
-    names: tuple[str, ...] = KRIGED_PROPERTIES,
+    names: tuple[str, ...] = KRIGED_PROPERTIES, grid: GridSpec | None = None,
 ) -> dict[str, Interpolation]:
     """Krige each of ``names`` that the samples hold at ``targets`` (m, shape (m, 2)).
 
@@ -177,6 +202,7 @@ def krige_properties(
     then fitted and cross-validated only (``pmap check``).
     """
     results: dict[str, Interpolation] = {}
+    covariates = _covariates(samples, targets, config, grid)
     for name in names:
         if name not in samples.values:
             continue
@@ -186,6 +212,8 @@ def krige_properties(
             results[name] = interpolate(
                 name, samples.coords[ok], values[ok], targets, config.kriging,
                 ids=samples.ids[ok], rows=samples.rows[ok], limits=_LIMITS.get(name),
+                covariates={c: (at_samples[ok], at_targets)
+                            for c, (at_samples, at_targets) in covariates.items()},
             )
         except PmapError as exc:
             # Only the properties the prescription cannot do without stop the run; an
@@ -358,7 +386,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     method = driver_method(inputs.samples, config)
     rule = rate_rule_for(method, config)  # fail before kriging
     table = interpretation_for(method, config)
-    kriged = krige_properties(inputs.samples, grid.inside_coords(), config)
+    kriged = krige_properties(inputs.samples, grid.inside_coords(), config, grid=grid)
     estimates = _physical_estimates(kriged)
 
     # Soil model on the kriged layers.

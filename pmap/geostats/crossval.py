@@ -24,7 +24,8 @@ from pmap.geostats.kriging import (
 )
 from pmap.geostats.variogram import VariogramModel, _check_points
 
-__all__ = ["CrossValidation", "leave_one_out", "loo_kriging", "k_fold", "fold_labels"]
+__all__ = ["CrossValidation", "leave_one_out", "loo_kriging", "k_fold", "fold_labels",
+           "figures_from_predictions"]
 
 
 @dataclass(frozen=True)
@@ -199,6 +200,18 @@ def _from_predictions(
     if limits is not None:
         estimate = clip_to_limits(estimate, limits)[0]
     return _figures(estimate - values, variance, standardized)
+
+
+def figures_from_predictions(
+    values: np.ndarray, estimate: np.ndarray, variance: np.ndarray,
+    limits: tuple[float, float] | None = None,
+) -> CrossValidation:
+    """Cross-validation figures from held-out predictions on the values' own scale."""
+    values = np.asarray(values, dtype=float)
+    estimate = np.asarray(estimate, dtype=float)
+    variance = np.asarray(variance, dtype=float)
+    return _from_predictions(values, values, estimate, variance, np.zeros_like(values), False,
+                             limits)
 
 
 def k_fold(

@@ -13,6 +13,7 @@ that constant.
 from __future__ import annotations
 
 import warnings
+from collections.abc import Mapping
 from dataclasses import dataclass, field, replace
 from typing import Any
 
@@ -21,7 +22,13 @@ import numpy as np
 from pmap._checks import check_number, check_whole, require
 from pmap.errors import ConfigError, InputError, InsufficientDataError, ModelFitError, PmapWarning
 from pmap.geostats.anisotropy import fit_anisotropic_variogram
-from pmap.geostats.crossval import CrossValidation, k_fold, leave_one_out
+from pmap.geostats.crossval import (
+    CrossValidation,
+    figures_from_predictions,
+    fold_labels,
+    k_fold,
+    leave_one_out,
+)
 from pmap.geostats.diagnostics import (
     CLOSE_PAIR_FRACTION,
     PURE_NUGGET_FRACTION,
@@ -34,6 +41,13 @@ from pmap.geostats.diagnostics import (
     neighbour_correlation,
     neighbour_spacing,
     range_at_bound,
+)
+from pmap.geostats.drift import (
+    linear_drift,
+    regression_residuals,
+    universal_k_fold,
+    universal_kriging,
+    universal_leave_one_out,
 )
 from pmap.geostats.kriging import (
     KrigingResult,
@@ -167,6 +181,21 @@ class KrigingSettings:
         metadata={"unit": "", "doc": "seed of the variogram subsample, the k-fold folds and the "
                   "simulations", "source": "common practice, no source"},
     )
+    drift: str = field(
+        default="none",
+        metadata={"unit": "", "doc": "'linear': also try universal kriging with a linear drift in "
+                  "x and y (each family refitted to the residuals of the plane); it is used only "
+                  "when its leave-one-out RMSE wins. Needs global kriging",
+                  "source": "common practice, no source"},
+    )
+    covariates: dict[str, str] = field(
+        default_factory=dict,
+        metadata={"unit": "", "doc": "covariate rasters (GeoTIFF) for regression kriging as name = "
+                  "path, e.g. elevation = \"dem.tif\": each property is also kriged with them as "
+                  "external drift (variogram fitted to the least-squares residuals) and that "
+                  "candidate is used only when its leave-one-out RMSE wins. Needs global kriging",
+                  "source": "Hengl, Heuvelink & Rossiter 2007, Comput. Geosci. 33"},
+    )
     probability: str = field(
         default="kriging",
         metadata={"unit": "", "doc": "where probability maps (deficiency of soil-test P, high "
@@ -288,6 +317,14 @@ class KrigingSettings:
         check_whole("kriging.variogram_max_samples", self.variogram_max_samples, ge=100)
         check_whole("kriging.k_folds", self.k_folds, ge=2)
         check_whole("kriging.seed", self.seed, ge=0)
+        if self.drift not in ("none", "linear"):
+            raise ConfigError(f"kriging.drift must be one of ['none', 'linear'], got {self.drift!r}")
+        require(isinstance(self.covariates, Mapping), "kriging.covariates",
+                "be a table of name = path", self.covariates)
+        object.__setattr__(self, "covariates", dict(self.covariates))
+        for cname, path in self.covariates.items():
+            require(isinstance(path, str) and bool(path.strip()), f"kriging.covariates.{cname}",
+                    "be the path of a GeoTIFF", path)
         if self.probability not in ("kriging", "simulation"):
             raise ConfigError("kriging.probability must be one of ['kriging', 'simulation'], "
                               f"got {self.probability!r}")
@@ -524,9 +561,41 @@ def _empirical(coords: np.ndarray, kriged: np.ndarray, settings: KrigingSettings
                                estimator=settings.estimator)
 
 
+@dataclass(frozen=True)
+class _Drift:
+    """Drift columns of universal / regression kriging at the samples and the targets."""
+
+    label: str
+    samples: np.ndarray
+    targets: np.ndarray
+
+    def subset(self, keep: np.ndarray) -> _Drift:
+        return _Drift(self.label, self.samples[keep], self.targets)
+
+
+def _drift_columns(coords: np.ndarray, targets: np.ndarray, settings: KrigingSettings,
+                   covariates: Mapping[str, tuple[np.ndarray, np.ndarray]] | None,
+                   ) -> _Drift | None:
+    parts, names = [], []
+    if settings.drift == "linear":
+        origin = coords.mean(axis=0)
+        scale = float(np.sqrt(np.mean(np.sum((coords - origin) ** 2, axis=1)))) or 1.0
+        parts.append((linear_drift(coords, origin, scale), linear_drift(targets, origin, scale)))
+        names.append("x, y")
+    for cname, (at_samples, at_targets) in (covariates or {}).items():
+        parts.append((np.asarray(at_samples, float)[:, None],
+                      np.asarray(at_targets, float)[:, None]))
+        names.append(cname)
+    if not parts:
+        return None
+    return _Drift(" + ".join(names), np.hstack([p[0] for p in parts]),
+                  np.hstack([p[1] for p in parts]))
+
+
 def _fit(
     name: str, coords: np.ndarray, values: np.ndarray, targets: np.ndarray,
     settings: KrigingSettings, limits: tuple[float, float] | None,
+    drift: _Drift | None = None,
 ) -> _Fit:
     n = values.size
     hood = choose_neighbourhood(
@@ -591,6 +660,14 @@ def _fit(
         raise ModelFitError(f"{name}: no variogram model could be fitted ("
                             + "; ".join(reasons) + ")")
 
+    if drift is not None and k is not None:
+        notes.append(f"{name}: kriging with drift ({drift.label}) needs global kriging and was "
+                     f"not tried ({hood.reason})")
+    elif drift is not None and by_cv and False in floors:
+        drift_cands, drift_emp = _drift_candidates(name, coords, values, drift, kinds, settings,
+                                                   subsample, limits, reasons)
+        candidates.extend(drift_cands)
+
     if by_cv:
         try:
             chosen = choose_candidate(candidates, settings.rmse_tie)
@@ -617,7 +694,7 @@ def _fit(
         if cand.skipped and by_cv:
             notes.append(f"{name}: the {cand.label} candidate was skipped: {cand.skipped}")
 
-    if settings.anisotropy == "auto" and n >= _MIN_ANISOTROPY_SAMPLES:
+    if settings.anisotropy == "auto" and n >= _MIN_ANISOTROPY_SAMPLES and not chosen.drift:
         sub_xy = coords if subsample is None else coords[subsample]
         kriged = np.log(values) if chosen.log else values
         sub_z = kriged if subsample is None else kriged[subsample]
@@ -645,6 +722,17 @@ def _fit(
     log, model = chosen.log, chosen.model
     kriged = np.log(values) if log else values
     system = systems.get(id(chosen))
+    if chosen.drift and drift is not None:
+        uk = universal_kriging(coords, values, targets, model, drift_samples=drift.samples,
+                               drift_targets=drift.targets, chunk_size=settings.chunk_size)
+        result = KrigingResult(uk.estimate, uk.variance, np.full(targets.shape[0], np.nan))
+        labels = fold_labels(n, min(settings.k_folds, n), settings.seed)
+        f_est, f_var = universal_k_fold(coords, values, model, drift.samples, labels)
+        folds = figures_from_predictions(values, f_est, f_var, limits)
+        rule += f"; kriging with drift ({drift.label}) won"
+        assert chosen.cv is not None
+        return _Fit(False, values, drift_emp, model, tuple(candidates), result, chosen.cv, folds, floors[False],
+                    tuple(notes), hood, rule, n_vario)
     if k is None:
         if system is None:
             system = KrigingSystem.factorise(coords, kriged, model)
@@ -662,6 +750,43 @@ def _fit(
     assert chosen.cv is not None
     return _Fit(log, kriged, empiricals[log], model, tuple(candidates), result, chosen.cv, folds,
                 floors[log], tuple(notes), hood, rule, n_vario)
+
+
+def _drift_candidates(
+    name: str, coords: np.ndarray, values: np.ndarray, drift: _Drift, kinds: tuple[str, ...],
+    settings: KrigingSettings, subsample: np.ndarray | None,
+    limits: tuple[float, float] | None, reasons: list[str],
+) -> tuple[list[Candidate], EmpiricalVariogram]:
+    """Universal / regression kriging candidates: each family fitted to the OLS residuals.
+
+    Returns the candidates and the empirical variogram of the residuals.
+    """
+    if not np.all(np.isfinite(drift.samples)):
+        bad = int((~np.all(np.isfinite(drift.samples), axis=1)).sum())
+        raise InputError(f"{name}: {bad} sample(s) have no value of the drift covariate(s) "
+                         f"({drift.label}): they lie outside the raster or on its nodata; "
+                         "extend the raster or remove it from kriging.covariates")
+    _, residuals, _ = regression_residuals(values, drift.samples)
+    emp = _empirical(coords, residuals, settings, subsample)
+    floor = nugget_floor(name, values, False, settings)
+    out: list[Candidate] = []
+    for kind in kinds:
+        try:
+            model = fit_variogram(emp, kind, min_nugget=floor)
+        except ModelFitError as exc:
+            reasons.append(f"drift {kind}: {exc}")
+            continue
+        wsse = weighted_sse(emp, model)
+        try:
+            est, var = universal_leave_one_out(coords, values, model, drift.samples)
+        except ModelFitError as exc:
+            out.append(Candidate(False, model, "fitted", wsse, None, skipped=str(exc),
+                                 drift=drift.label))
+            continue
+        out.append(Candidate(False, model, "fitted", wsse,
+                             figures_from_predictions(values, est, var, limits),
+                             drift=drift.label))
+    return out, emp
 
 
 def _find_outliers(
@@ -793,6 +918,7 @@ def interpolate(
     ids: np.ndarray | None = None,
     rows: np.ndarray | None = None,
     limits: tuple[float, float] | None = None,
+    covariates: Mapping[str, tuple[np.ndarray, np.ndarray]] | None = None,
 ) -> Interpolation:
     """Krige one property at ``targets`` with a fitted variogram and cross-validation.
 
@@ -816,6 +942,9 @@ def interpolate(
     limits : (float, float), optional
         Physical range of the property (its units): estimates, and leave-one-out
         predictions, are clipped to it, with a warning when that bites.
+    covariates : mapping of str to (numpy.ndarray (n,), numpy.ndarray (m,)), optional
+        Covariates for regression kriging: name -> (value at each sample, value at each
+        target), used as external drift with ``settings.drift``'s linear drift (if any).
 
     Returns
     -------
@@ -854,6 +983,9 @@ def interpolate(
     if ids.shape != values.shape or (rows is not None and np.shape(rows) != values.shape):
         raise ValueError(f"{name}: ids and rows must have the shape of values, {values.shape}")
     has_value = np.isfinite(values)
+    drift = _drift_columns(coords, np.asarray(targets, dtype=float), settings, covariates)
+    if drift is not None:
+        drift = drift.subset(has_value)
     coords, values, ids = coords[has_value], values[has_value], ids[has_value]
     rows = None if rows is None else np.asarray(rows)[has_value]
     n = values.size
@@ -873,7 +1005,7 @@ def interpolate(
     if name in LOGARITHMIC and settings.log_transform == "always":
         notes.append(f"{name}: kriging.log_transform = 'always' is ignored for {name}: it is "
                      "already a logarithm and is kriged on its own scale")
-    fit = _fit(name, coords, values, targets, settings, limits)
+    fit = _fit(name, coords, values, targets, settings, limits, drift)
     found, flagged = _find_outliers(fit, values, ids, rows, settings.outlier_z)
     n_dropped = 0
     n_mismatch = 0
@@ -893,8 +1025,9 @@ def interpolate(
             notes.append(_outlier_note(name, dropped, fit.log, settings.outlier_z, dropped=True))
             coords, values, ids = coords[keep], values[keep], ids[keep]
             rows = None if rows is None else rows[keep]
+            drift = None if drift is None else drift.subset(keep)
             n_dropped = int(flagged.sum())
-            fit = _fit(name, coords, values, targets, settings, limits)
+            fit = _fit(name, coords, values, targets, settings, limits, drift)
             again, again_flagged = _find_outliers(fit, values, ids, rows, settings.outlier_z)
             if _too_many(again_flagged):
                 notes.append(_mismatch_note(name, fit, ids, rows, again_flagged,

@@ -66,6 +66,9 @@ class Candidate:
         Leave-one-out figures in the property's units; None when not cross-validated.
     skipped : str
         Why the candidate could not be used (e.g. a singular system); empty otherwise.
+    drift : str
+        The drift of universal / regression kriging (e.g. ``"x, y"`` or ``"elevation"``);
+        empty for ordinary kriging.  Its model is the variogram of the residuals.
     """
 
     log: bool
@@ -74,13 +77,16 @@ class Candidate:
     wsse: float
     cv: CrossValidation | None = None
     skipped: str = ""
+    drift: str = ""
 
     @property
     def label(self) -> str:
         """Short name, e.g. ``"log spherical, nugget fitted"``."""
         aniso = (f", anisotropic {self.model.ratio:.2f} at {self.model.angle:.0f} deg"
                  if self.model.anisotropic else "")
-        return f"{'log ' if self.log else ''}{self.model.kind}, nugget {self.nugget}{aniso}"
+        drift = f", drift {self.drift}" if self.drift else ""
+        return (f"{'log ' if self.log else ''}{self.model.kind}, nugget {self.nugget}{aniso}"
+                f"{drift}")
 
     def as_dict(self, chosen: bool = False) -> dict[str, Any]:
         """Plain values for the summary."""
@@ -90,6 +96,7 @@ class Candidate:
             "nugget_option": self.nugget,
             "model": self.model.as_dict(),
             "wsse": float(self.wsse),
+            "drift": self.drift or None,
             "chosen": bool(chosen),
         }
         if self.cv is not None:
