@@ -288,7 +288,15 @@ def to_canonical(
     read_as = unit if unit is not None and unit != canonical else canonical
     note = (f"{label}: column {column!r} read as {read_as} and converted to {canonical} "
             f"({'; '.join(steps)})")
-    return np.asarray(values, dtype=np.float64) * factor, note
+    with np.errstate(over="ignore"):
+        converted = np.asarray(values, dtype=np.float64) * factor
+    overflow = np.isinf(converted) & np.isfinite(values)
+    if overflow.any():
+        raise InputError(
+            f"{file_name}: column {column!r}: {int(overflow.sum())} value(s) (the first "
+            f"{float(np.asarray(values)[overflow][0]):g}) are too large to convert to "
+            f"{CANONICAL_UNITS[prop]}; check the column's unit and values")
+    return converted, note
 
 
 def _factor(prop: str, unit: str, found: str, column: str, file_name: str) -> tuple[float, str]:
