@@ -274,3 +274,42 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
         counts[bi, 0] = n_sets
         counts[bi, 1] = n_reg
         counts[bi, 2] = n_empty
+
+
+@njit(cache=True, parallel=True)
+def covariance_block(xy, txy, kind, nug, ps, rng, shape, out):
+    """Unit-sill covariances ``out[i, j] = 1 - gamma(|xy_i - txy_j|)`` (global kriging).
+
+    One loop per model kind, so that the inner loop has no branch on the kind and
+    vectorises.
+    """
+    n = xy.shape[0]
+    m = txy.shape[0]
+    tx = txy[:, 0].copy()
+    ty = txy[:, 1].copy()
+    inv = 1.0 / rng
+    top = 1.0 - nug
+    for i in prange(n):
+        xi = xy[i, 0]
+        yi = xy[i, 1]
+        row = out[i]
+        for j in range(m):
+            dx = tx[j] - xi
+            dy = ty[j] - yi
+            row[j] = np.sqrt(dx * dx + dy * dy) * inv
+        if kind == 0:
+            for j in range(m):
+                r = min(row[j], 1.0)
+                row[j] = top - ps * (r * (1.5 - 0.5 * r * r))
+        elif kind == 1:
+            for j in range(m):
+                row[j] = top - ps * (1.0 - np.exp(-3.0 * row[j]))
+        elif kind == 2:
+            for j in range(m):
+                row[j] = top - ps * (1.0 - np.exp(-3.0 * row[j] * row[j]))
+        else:
+            for j in range(m):
+                row[j] = top - ps * (1.0 - np.exp(-3.0 * row[j] ** shape))
+        for j in range(m):                      # gamma(0) = 0: covariance 1 at distance 0
+            if tx[j] == xi and ty[j] == yi:
+                row[j] = 1.0

@@ -73,6 +73,8 @@ CONSTANT = "constant"
 _BLOCK = 2048
 #: Upper bound of a fitted practical range, in multiples of the cutoff.
 MAX_RANGE_FACTOR = 3.0
+# Refinements of the best grid ranges in an unshaped fit.
+_UNSHAPED_STARTS = 3
 # Lower bound of a fitted practical range, in multiples of the cutoff.
 _MIN_RANGE_FACTOR = 1e-3
 
@@ -478,10 +480,10 @@ def fit_variogram(
     variance, which no nugget can be below; the caller converts it to those units),
     partial sill >= 0, practical range in ``[0.001, 3] x cutoff`` (m), and for the shaped
     families the shape in :data:`SHAPE_BOUNDS` (stable alpha in [0.2, 2], Matern nu in
-    [0.2, 5]), fitted jointly as a fourth parameter.  Unshaped families: a small grid of
-    starting values (range at 0.1-2 cutoffs, nugget at 0 and at half the first bin's
-    semivariance) is tried and the lowest weighted SSE kept.  ``max_nugget`` (same units)
-    caps the nugget; ``max_nugget == min_nugget`` holds it there (the "no nugget beyond the
+    [0.2, 5]), fitted jointly as a fourth parameter.  Unshaped families: the SSE is
+    profiled on a grid of 49 ranges with nugget and partial sill solved exactly, and the
+    three best grid ranges are refined jointly; the lowest weighted SSE is kept.
+    ``max_nugget`` (same units) caps the nugget; ``max_nugget == min_nugget`` holds it there (the "no nugget beyond the
     lab error" candidate of model selection).  Shaped families: the SSE is
     profiled on a (range x shape) grid with nugget and partial sill solved exactly, and
     the best cells of the three best shapes are refined jointly.
@@ -525,20 +527,26 @@ def fit_variogram(
 
     best: np.ndarray | None = None
     best_cost = np.inf
-    g_far = float(np.mean(g[-max(1, g.size // 3):])) / scale
-    nug_starts = sorted({min(max(v, nug_lo * (1.0 + 1e-6)), 0.5 * (nug_lo + nug_hi_ls)
-                             if np.isfinite(nug_hi_ls) else np.inf)
-                         for v in (0.0, 0.5 * g[0] / scale)})
-    for rng0 in (0.1, 0.25, 0.5, 1.0, 2.0):
-        for nug0 in nug_starts:
-            x0 = np.array([nug0, max(g_far - nug0, 0.05), rng0])
-            try:
-                sol = least_squares(residuals, x0, bounds=(lo, hi), method="trf",
-                                    xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=2000)
-            except (ValueError, np.linalg.LinAlgError):
-                continue
-            if np.all(np.isfinite(sol.x)) and sol.cost < best_cost:
-                best, best_cost = sol.x, sol.cost
+    # Starting values: the weighted SSE profiled over a grid of ranges, nugget and partial
+    # sill solved exactly at each; the best few grid ranges are then refined jointly.
+    ranges = np.geomspace(_MIN_RANGE_FACTOR, MAX_RANGE_FACTOR, 49)
+    grid = np.stack([_structure(kind, h / (r * cutoff)) for r in ranges])
+    nug_g, ps_g, sse_g = _linear_sill_fit(grid, g / scale, sw * sw, nug_lo, nug_hi)
+    starts = []
+    for j in np.argsort(sse_g, kind="stable")[:_UNSHAPED_STARTS]:
+        nug0 = min(max(float(nug_g[j]), nug_lo * (1.0 + 1e-6)),
+                   0.5 * (nug_lo + nug_hi_ls) if np.isfinite(nug_hi_ls) else np.inf)
+        starts.append((nug0, max(float(ps_g[j]), 1e-3), float(ranges[j])))
+    for nug0, ps0, rng0 in starts:
+        x0 = np.array([nug0, ps0, min(max(rng0, _MIN_RANGE_FACTOR * (1 + 1e-9)),
+                                      MAX_RANGE_FACTOR * (1 - 1e-9))])
+        try:
+            sol = least_squares(residuals, x0, bounds=(lo, hi), method="trf",
+                                xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=2000)
+        except (ValueError, np.linalg.LinAlgError):
+            continue
+        if np.all(np.isfinite(sol.x)) and sol.cost < best_cost:
+            best, best_cost = sol.x, sol.cost
     if best is None:
         raise ModelFitError(f"{kind} variogram fit did not converge from any starting value")
     nug, ps, rng = (0.0 if v < 1e-12 else v for v in best)

@@ -148,7 +148,7 @@ def main() -> None:
         if cold and warm:
             print(f"numba kernel, first call in a fresh process: {cold['first_call']:.1f} s "
                   f"with an empty cache (compiling), {warm['first_call']:.2f} s from the cache")
-        print("\nlocal kriging, 1 km square, targets on a 1 m grid"
+        print("\nlocal kriging, 1 km square, targets on a regular grid"
               f" ({side * side:,} cells), with variance")
         print(f"{'samples':>8} {'k':>3} {'pmap s':>7} {'pykrige C s':>12} {'ratio':>6} "
               f"{'pmap MiB':>9} {'pykrige MiB':>12} {'max |diff|':>11} {'GFLOP/s':>8}")
