@@ -18,7 +18,7 @@ from numba import njit, prange
 
 #: Model kinds the kernel evaluates itself (others use the numpy path).
 KIND_CODES = {"spherical": 0, "exponential": 1, "gaussian": 2, "stable": 3}
-_CACHE = 32
+_CACHE = 128
 _RCOND = 1e-12
 
 
