@@ -3,9 +3,11 @@
 The same covariance-form algebra as the pure-numpy path of that module, per target:
 k nearest samples by a search over square buckets of samples (rings of buckets until no
 unsearched bucket can hold a nearer sample), the neighbour set sorted, looked up among the
-last few sets factorised in this block (targets arrive in Z-order, so neighbouring targets
-follow each other and mostly share their set), a Cholesky factorisation on a miss, then
-one triangular solve.  Blocks of targets run in parallel threads.
+last 128 sets factorised in this block (targets arrive in Z-order, so neighbouring targets
+follow each other and mostly share their set); on a miss, the previous target's factor
+updated when at most three samples changed (rank-one downdate of a dropped row, one
+appended row per new sample), else a fresh Cholesky factorisation; then one triangular
+solve.  Blocks of targets run in parallel threads.
 
 Compiled on first use and cached on disk (``cache=True``); see docs/geostatistics.md for
 the measured compile cost.
@@ -19,6 +21,11 @@ from numba import njit, prange
 #: Model kinds the kernel evaluates itself (others use the numpy path).
 KIND_CODES = {"spherical": 0, "exponential": 1, "gaussian": 2, "stable": 3}
 _CACHE = 128
+# A set that differs from the previous one by at most this many samples in and out is
+# factorised by updating the previous factor (O(k^2) per change instead of k^3 / 3) ...
+_MAX_CHANGES = 3
+# ... for at most this many updates in a row before a fresh factorisation.
+_MAX_CHAIN = 32
 _RCOND = 1e-12
 
 
@@ -143,6 +150,16 @@ def _factorise(xy, z, members, kk, kind, nug, ps, rng, shape, L, u, g):
             break
         regularised = True
         jitter = 1e-10 if jitter == 0.0 else jitter * 100.0
+    s, mean = _solve_u_g(xy, z, members, kk, L, u, g)
+    return s, mean, regularised
+
+
+@njit(cache=True)
+def _solve_u_g(xy, z, members, kk, L, u, g):
+    """u = C^-1 1 and g = C^-1 (z - m 1) from the factor L of the set ``members``.
+
+    Returns (s, mean) with s = 1'u and mean = u'z / s.
+    """
     # u = C^-1 1 and C^-1 z by two triangular solves each.
     w = np.empty(kk)
     v = np.empty(kk)
@@ -170,7 +187,64 @@ def _factorise(xy, z, members, kk, kind, nug, ps, rng, shape, L, u, g):
     mean = uz / s
     for i in range(kk):
         g[i] -= mean * u[i]                 # C^-1 (z - m 1) = C^-1 z - m u
-    return s, mean, regularised
+    return s, mean
+
+
+@njit(cache=True)
+def _drop_member(L, kk, p):
+    """Cholesky factor of the set without its p-th member (in factor order), in place.
+
+    Rows below p move up one; the trailing block gets the rank-one update by the old
+    column p (Givens-like cholupdate), O(kk^2).  Returns False if it breaks down.
+    """
+    m = kk - p - 1
+    x = np.empty(m)
+    for i in range(m):
+        x[i] = L[p + 1 + i, p]
+    for i in range(p, kk - 1):                  # shift rows p+1.. up, columns < p kept
+        for j in range(p):
+            L[i, j] = L[i + 1, j]
+        for j in range(p, i + 1):
+            L[i, j] = L[i + 1, j + 1]
+    for j in range(m):
+        jj = p + j
+        d = L[jj, jj]
+        r = np.sqrt(d * d + x[j] * x[j])
+        if not r > 0.0:
+            return False
+        c = r / d
+        sn = x[j] / d
+        L[jj, jj] = r
+        for i in range(j + 1, m):
+            ii = p + i
+            L[ii, jj] = (L[ii, jj] + sn * x[i]) / c
+            x[i] = c * x[i] - sn * L[ii, jj]
+    return True
+
+
+@njit(cache=True)
+def _append_member(xy, L, order, kk, new, kind, nug, ps, rng, shape):
+    """Add sample ``new`` as the last member of the factor (row kk), O(kk^2).
+
+    Returns False if the new diagonal is not safely positive (then refactorise).
+    """
+    xn = xy[new, 0]
+    yn = xy[new, 1]
+    ss = 0.0
+    for i in range(kk):
+        dx = xy[order[i], 0] - xn
+        dy = xy[order[i], 1] - yn
+        acc = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
+        for p in range(i):
+            acc -= L[i, p] * L[kk, p]
+        L[kk, i] = acc / L[i, i]
+        ss += L[kk, i] * L[kk, i]
+    d2 = 1.0 - ss
+    if d2 < _RCOND:
+        return False
+    L[kk, kk] = np.sqrt(d2)
+    order[kk] = new
+    return True
 
 
 @njit(cache=True, parallel=True)
@@ -185,7 +259,12 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
     n_blocks = (m + block - 1) // block
     for bi in prange(n_blocks):
         cache_sets = np.full((_CACHE, k), -1, dtype=np.int64)
+        cache_order = np.full((_CACHE, k), -1, dtype=np.int64)
+        cache_chain = np.zeros(_CACHE, dtype=np.int64)
         cache_kk = np.zeros(_CACHE, dtype=np.int64)
+        last = -1
+        removed = np.empty(_MAX_CHANGES, dtype=np.int64)
+        added = np.empty(_MAX_CHANGES, dtype=np.int64)
         cache_L = np.zeros((_CACHE, k, k))
         cache_u = np.zeros((_CACHE, k))
         cache_g = np.zeros((_CACHE, k))
@@ -240,22 +319,80 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
             if slot < 0:
                 slot = next_slot
                 next_slot = (next_slot + 1) % _CACHE
-                s_, mean_, reg = _factorise(xy, z, members, kk, kind, nug, ps, rng, shape,
-                                            cache_L[slot], cache_u[slot], cache_g[slot])
+                updated = False
+                if (last >= 0 and last != slot and cache_kk[last] == kk
+                        and cache_chain[last] < _MAX_CHAIN):
+                    # The previous set, one or two samples changed: update its factor.
+                    nr = 0
+                    na = 0
+                    a = 0
+                    b = 0
+                    while (a < kk or b < kk) and nr <= _MAX_CHANGES and na <= _MAX_CHANGES:
+                        if b >= kk or (a < kk and cache_sets[last, a] < members[b]):
+                            if nr < _MAX_CHANGES:
+                                removed[nr] = cache_sets[last, a]
+                            nr += 1
+                            a += 1
+                        elif a >= kk or members[b] < cache_sets[last, a]:
+                            if na < _MAX_CHANGES:
+                                added[na] = members[b]
+                            na += 1
+                            b += 1
+                        else:
+                            a += 1
+                            b += 1
+                    if nr <= _MAX_CHANGES and na <= _MAX_CHANGES:
+                        L = cache_L[slot]
+                        od = cache_order[slot]
+                        for i in range(kk):
+                            od[i] = cache_order[last, i]
+                            for j in range(i + 1):
+                                L[i, j] = cache_L[last, i, j]
+                        cur = kk
+                        ok = True
+                        for r in range(nr):
+                            pos = 0
+                            while od[pos] != removed[r]:
+                                pos += 1
+                            if not _drop_member(L, cur, pos):
+                                ok = False
+                                break
+                            for i in range(pos, cur - 1):
+                                od[i] = od[i + 1]
+                            cur -= 1
+                        if ok:
+                            for r in range(na):
+                                if not _append_member(xy, L, od, cur, added[r], kind, nug, ps,
+                                                      rng, shape):
+                                    ok = False
+                                    break
+                                cur += 1
+                        if ok:
+                            s_, mean_ = _solve_u_g(xy, z, od, kk, L, cache_u[slot],
+                                                   cache_g[slot])
+                            cache_chain[slot] = cache_chain[last] + 1
+                            updated = True
+                if not updated:
+                    for i in range(kk):
+                        cache_order[slot, i] = members[i]
+                    s_, mean_, reg = _factorise(xy, z, members, kk, kind, nug, ps, rng, shape,
+                                                cache_L[slot], cache_u[slot], cache_g[slot])
+                    cache_chain[slot] = 0
+                    if reg:
+                        n_reg += 1
                 cache_s[slot] = s_
                 cache_mean[slot] = mean_
                 cache_kk[slot] = kk
                 for i in range(kk):
                     cache_sets[slot, i] = members[i]
                 n_sets += 1
-                if reg:
-                    n_reg += 1
+            last = slot
             L = cache_L[slot]
             qq = 0.0
             tt = 0.0
             e = cache_mean[slot]
             for i in range(kk):
-                j = cache_sets[slot, i]
+                j = cache_order[slot, i]
                 dx = xy[j, 0] - tx
                 dy = xy[j, 1] - ty
                 c0[i] = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
