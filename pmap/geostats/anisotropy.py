@@ -12,7 +12,6 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 
 import numpy as np
-from scipy.optimize import least_squares
 
 from pmap.errors import ModelFitError
 from pmap.geostats.variogram import (
@@ -33,6 +32,7 @@ from pmap.geostats.variogram import (
     _pair_statistic,
     _shaped_structure,
     _structure,
+    best_least_squares,
     fit_variogram,
     matern_practical_factor,
 )
@@ -396,20 +396,12 @@ def fit_anisotropic_variogram(
         starts.append((ranges[longest], min(ranges.values()) / ranges[longest], longest))
     if not starts:
         starts.append((omni.range, 1.0, 0.0))
-    best: np.ndarray | None = None
-    best_cost = np.inf
-    for major, ratio0, angle0 in starts:
-        rng0 = min(max(major, omni.range), MAX_RANGE_FACTOR * cutoff) / cutoff
-        x0 = np.array(base + [rng0] + ([omni.shape] if shaped else [])
-                      + [float(np.clip(ratio0, *_START_RATIO)), np.radians(angle0)])
-        x0 = np.clip(x0, lo_in, hi_in)
-        try:
-            sol = least_squares(residuals, x0, bounds=(lo_arr, hi_arr), method="trf",
-                                xtol=1e-10, ftol=1e-10, gtol=1e-10, max_nfev=1000)
-        except (ValueError, np.linalg.LinAlgError):
-            continue
-        if np.all(np.isfinite(sol.x)) and sol.cost < best_cost:
-            best, best_cost = sol.x, sol.cost
+    x0s = [np.clip(np.array(base + [min(max(major, omni.range), MAX_RANGE_FACTOR * cutoff)
+                                     / cutoff] + ([omni.shape] if shaped else [])
+                            + [float(np.clip(ratio0, *_START_RATIO)), np.radians(angle0)]),
+                   lo_in, hi_in)
+           for major, ratio0, angle0 in starts]
+    best = best_least_squares(residuals, x0s, lo_arr, hi_arr, tol=1e-10, max_nfev=1000)
     if best is None:
         raise ModelFitError(f"anisotropic {kind} variogram fit did not converge")
     nug, ps = (0.0 if v < 1e-12 else float(v) for v in best[:2])

@@ -37,7 +37,6 @@ the trend returned here is that GLS trend.
 
 from __future__ import annotations
 
-import warnings
 from dataclasses import dataclass
 
 import numpy as np
@@ -45,8 +44,13 @@ from scipy.linalg import LinAlgError, cholesky, solve_triangular
 from scipy.linalg.lapack import dpocon
 from scipy.spatial.distance import cdist
 
-from pmap.errors import ModelFitError, PmapWarning
-from pmap.geostats.kriging import SingularSystemError, check_duplicates
+from pmap.errors import ModelFitError
+from pmap.geostats.kriging import (
+    _RCOND_SINGULAR,
+    _unit_sill,
+    check_duplicates,
+    unit_cholesky,
+)
 from pmap.geostats.variogram import VariogramModel
 
 __all__ = [
@@ -58,10 +62,6 @@ __all__ = [
     "universal_k_fold",
 ]
 
-# Reciprocal condition number of the covariance matrix below which it counts as singular.
-_RCOND_SINGULAR = 1e-13
-# Reciprocal condition number of the covariance matrix below which results may lose digits.
-_RCOND_WARN = 1e-10
 # Smallest / largest singular value of the standardised drift design below which the
 # drift columns count as collinear.
 _DRIFT_RCOND = 1e-10
@@ -168,34 +168,11 @@ def _unit_cholesky(
 ) -> tuple[VariogramModel, float, np.ndarray]:
     """The model at unit sill, the sill it was divided by and the Cholesky factor of ``C``.
 
-    ``xs`` are the sample coordinates already mapped by ``model.isotropic_coords``.  Raises
-    :class:`~pmap.geostats.kriging.SingularSystemError` when ``C`` is numerically singular
-    and warns (:class:`~pmap.errors.PmapWarning`, at ``stacklevel``) when it is
-    ill-conditioned.
+    ``xs`` are the sample coordinates already mapped by ``model.isotropic_coords``; the
+    factor and its checks are :func:`pmap.geostats.kriging.unit_cholesky`'s.
     """
-    scale = model.sill if model.sill > 0 else 1.0
-    unit = model.with_sill_scaled(1.0 / scale)
-    cov = unit(cdist(xs, xs))
-    np.subtract(unit.sill, cov, out=cov)
-    try:
-        chol = cholesky(cov, lower=True, check_finite=False)
-        rcond, info = dpocon(chol, np.linalg.norm(cov, 1), uplo="L")
-    except LinAlgError:
-        chol, rcond, info = cov, 0.0, 0
-    if info != 0 or not rcond >= _RCOND_SINGULAR:
-        raise SingularSystemError(
-            f"the covariance matrix of the samples is numerically singular with the "
-            f"{model.kind} model (reciprocal condition number {rcond:.1e}); a gaussian model "
-            "without nugget or samples very close together cause this: add a nugget, use "
-            "another model, or average near-coincident samples"
-        )
-    if rcond < _RCOND_WARN:
-        warnings.warn(
-            f"covariance matrix is ill-conditioned (reciprocal condition number "
-            f"{rcond:.1e}); results may lose accuracy",
-            PmapWarning,
-            stacklevel=stacklevel,
-        )
+    unit, scale = _unit_sill(model)
+    chol, _ = unit_cholesky(xs, unit, stacklevel=stacklevel + 1)
     return unit, float(scale), chol
 
 

@@ -606,7 +606,9 @@ def _fit(
     n_vario = n if subsample is None else int(subsample.size)
     notes: list[str] = []
     candidates: list[Candidate] = []
-    systems: dict[int, KrigingSystem] = {}
+    # Factorised systems kept for the map: only of candidates that can still be chosen
+    # (within kriging.rmse_tie of the best RMSE so far), so memory holds few n x n factors.
+    held: list[tuple[Candidate, KrigingSystem]] = []
     empiricals: dict[bool, EmpiricalVariogram] = {}
     floors: dict[bool, float] = {}
     reasons: list[str] = []
@@ -622,7 +624,9 @@ def _fit(
             return Candidate(log, model, nugget, wsse, None, skipped=str(exc))
         cand = Candidate(log, model, nugget, wsse, cv)
         if system is not None:
-            systems[id(cand)] = system
+            held.append((cand, system))
+            band = min(c.cv.rmse for c, _ in held) * (1.0 + settings.rmse_tie)
+            held[:] = [(c, s) for c, s in held if c.cv.rmse <= band]
         return cand
 
     kinds = settings.models
@@ -721,7 +725,7 @@ def _fit(
 
     log, model = chosen.log, chosen.model
     kriged = np.log(values) if log else values
-    system = systems.get(id(chosen))
+    system = next((s for c, s in held if c is chosen), None)
     if chosen.drift and drift is not None:
         uk = universal_kriging(coords, values, targets, model, drift_samples=drift.samples,
                                drift_targets=drift.targets, chunk_size=settings.chunk_size)

@@ -191,21 +191,60 @@ def _apply_lower(lower: np.ndarray, b: np.ndarray, out: np.ndarray) -> np.ndarra
 
 def _compiled_covariance(model: VariogramModel):
     """The compiled (numba) covariance block for ``model``, or None for the numpy path."""
-    import os
+    from pmap.geostats.neighbourhood import _use_numba, kernel_model_args
 
-    from pmap.geostats.neighbourhood import _NUMBA_KINDS, numba_available
-
-    if model.kind not in _NUMBA_KINDS or os.environ.get("PMAP_NUMPY_ONLY") or not numba_available():
+    if not _use_numba("auto", model.kind):
         return None
     from pmap.geostats import _local_numba as kernel
 
-    args = (kernel.KIND_CODES[model.kind], float(model.nugget), float(model.psill),
-            float(model.range), 0.0 if model.shape is None else float(model.shape))
+    args = kernel_model_args(model)
 
     def block(xy: np.ndarray, txy: np.ndarray, out: np.ndarray) -> None:
         kernel.covariance_block(xy, txy, *args, out)
 
     return block
+
+
+def unit_cholesky(xy: np.ndarray, unit: VariogramModel, *, stacklevel: int = 2,
+                  ) -> tuple[np.ndarray, float]:
+    """Lower Cholesky factor of the covariance matrix of ``xy`` under a unit-sill model.
+
+    ``xy`` are coordinates already mapped by ``unit.isotropic_coords``.  Returns the factor
+    and its reciprocal condition number (LAPACK ``dpocon``).
+
+    Raises
+    ------
+    SingularSystemError
+        Reciprocal condition number below 1e-13.
+
+    Warns
+    -----
+    PmapWarning
+        Below 1e-10 (at ``stacklevel``): results may lose digits.
+    """
+    n = xy.shape[0]
+    cov = _covariance_into(unit, cdist(xy, xy), np.empty((n, n)))
+    np.fill_diagonal(cov, unit.sill)
+    anorm = float(np.abs(cov).sum(axis=0).max())
+    chol, info = dpotrf(cov, lower=1, clean=1, overwrite_a=1)
+    rcond = 0.0
+    if info == 0:
+        rcond, info = dpocon(chol, anorm, uplo="L")
+    if info != 0 or not rcond >= _RCOND_SINGULAR:
+        raise SingularSystemError(
+            f"the kriging system is numerically singular with the {unit.kind} model "
+            f"(reciprocal condition number {rcond:.1e}); a gaussian model without nugget or "
+            "samples very close together cause this: add a nugget, use another model, or "
+            "average near-coincident samples"
+        )
+    if rcond < _RCOND_WARN:
+        warnings.warn(
+            f"kriging system is ill-conditioned (reciprocal condition number {rcond:.1e}); "
+            "results may lose accuracy",
+            PmapWarning,
+            stacklevel=stacklevel,
+        )
+    return chol, float(rcond)
 
 
 @dataclass(frozen=True)
@@ -247,27 +286,7 @@ class KrigingSystem:
         check_duplicates(coords)
         unit, scale = _unit_sill(model)
         xy = unit.isotropic_coords(coords)
-        cov = _covariance_into(unit, cdist(xy, xy), np.empty((n, n)))
-        np.fill_diagonal(cov, unit.sill)
-        anorm = float(np.abs(cov).sum(axis=0).max())
-        chol, info = dpotrf(cov, lower=1, clean=1, overwrite_a=1)
-        rcond = 0.0
-        if info == 0:
-            rcond, info = dpocon(chol, anorm, uplo="L")
-        if info != 0 or not rcond >= _RCOND_SINGULAR:
-            raise SingularSystemError(
-                f"the kriging system is numerically singular with the {model.kind} model "
-                f"(reciprocal condition number {rcond:.1e}); a gaussian model without nugget or "
-                "samples very close together cause this: add a nugget, use another model, or "
-                "average near-coincident samples"
-            )
-        if rcond < _RCOND_WARN:
-            warnings.warn(
-                f"kriging system is ill-conditioned (reciprocal condition number {rcond:.1e}); "
-                "results may lose accuracy",
-                PmapWarning,
-                stacklevel=3,
-            )
+        chol, rcond = unit_cholesky(xy, unit, stacklevel=4)
         factor = (chol, True)
         u = cho_solve(factor, np.ones(n), check_finite=False)
         s = float(u.sum())

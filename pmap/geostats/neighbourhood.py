@@ -291,14 +291,13 @@ def local_ordinary_kriging(
         if rows.size == 0:
             continue
         idx = idx[rows]
-        keys, first, inverse = np.unique(_set_hash(idx), return_index=True, return_inverse=True)
+        _, first, inverse = np.unique(_set_hash(idx), return_index=True, return_inverse=True)
         sets = idx[first]
         if not np.array_equal(sets[inverse], idx):          # hash collision: no sharing
             sets, inverse = idx, np.arange(idx.shape[0])
         n_sets += sets.shape[0]
         chol, u, ssum, mean, g, real, reg = _factorise_sets(xy, values, sets, unit)
         regularised += reg
-        del keys
         # Per target: covariances to its set, one triangular solve.
         p = xy[np.where(real, sets, 0)][inverse]             # (T, k, 2)
         d = np.hypot(p[:, :, 0] - txy[s0 + rows, 0, None], p[:, :, 1] - txy[s0 + rows, 1, None])
@@ -352,6 +351,15 @@ def _use_numba(engine: str, kind: str) -> bool:
     return supported and numba_available() and not os.environ.get("PMAP_NUMPY_ONLY")
 
 
+def kernel_model_args(unit: VariogramModel) -> tuple[int, float, float, float, float]:
+    """A unit-sill model as the compiled kernels take it: kind code, nugget, partial sill,
+    range (m) and shape (0 when unshaped)."""
+    from pmap.geostats._local_numba import KIND_CODES
+
+    return (KIND_CODES[unit.kind], float(unit.nugget), float(unit.psill), float(unit.range),
+            0.0 if unit.shape is None else float(unit.shape))
+
+
 def _buckets(xy: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray, float, float, float, int, int]:
     """Square buckets of about k/2 samples: order of samples by bucket and bucket offsets."""
     lo = xy.min(axis=0)
@@ -399,11 +407,9 @@ def _numba_path(
     var = np.empty(m)
     mu = np.empty(m)
     counts = np.zeros(((m + _NUMBA_BLOCK - 1) // _NUMBA_BLOCK, 3), dtype=np.int64)
-    shape = 0.0 if unit.shape is None else float(unit.shape)
     kernel.krige_targets(
         xy, values, txy, order, self_index, bstart, border, b0x, b0y, size, nbx, nby,
-        kernel.KIND_CODES[unit.kind], float(unit.nugget), float(unit.psill), float(unit.range),
-        shape, int(k), float(radius2), _NUMBA_BLOCK, est, var, mu, counts,
+        *kernel_model_args(unit), int(k), float(radius2), _NUMBA_BLOCK, est, var, mu, counts,
     )
     n_sets, regularised, empty = (int(v) for v in counts.sum(axis=0))
     if regularised:

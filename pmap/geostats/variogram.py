@@ -12,7 +12,7 @@ uses a 4/7 factor and so differs.
 
 from __future__ import annotations
 
-from collections.abc import Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, replace
 from functools import lru_cache
 from typing import Any
@@ -24,6 +24,7 @@ from scipy.spatial.distance import cdist
 from pmap.errors import ModelFitError
 
 __all__ = [
+    "best_least_squares",
     "MODELS",
     "SHAPED",
     "DEFAULT_MODELS",
@@ -469,6 +470,28 @@ def weighted_sse(emp: EmpiricalVariogram, model: VariogramModel) -> float:
     return float(np.sum(w * (model(emp.lag[use]) - emp.gamma[use]) ** 2))
 
 
+def best_least_squares(
+    residuals: Callable[[np.ndarray], np.ndarray], starts: Iterable[np.ndarray],
+    lo: np.ndarray, hi: np.ndarray, *, tol: float = 1e-12, max_nfev: int = 2000,
+) -> np.ndarray | None:
+    """Bounded least squares (trust-region reflective) from each start; the lowest cost.
+
+    Starts that fail (infeasible, a linear-algebra error) or end non-finite are skipped;
+    None when none succeeds.
+    """
+    best: np.ndarray | None = None
+    best_cost = np.inf
+    for x0 in starts:
+        try:
+            sol = least_squares(residuals, x0, bounds=(lo, hi), method="trf",
+                                xtol=tol, ftol=tol, gtol=tol, max_nfev=max_nfev)
+        except (ValueError, np.linalg.LinAlgError):
+            continue
+        if np.all(np.isfinite(sol.x)) and sol.cost < best_cost:
+            best, best_cost = sol.x, sol.cost
+    return best
+
+
 def fit_variogram(
     emp: EmpiricalVariogram, kind: str, *, min_nugget: float = 0.0,
     max_nugget: float | None = None,
@@ -525,8 +548,6 @@ def fit_variogram(
         nug, ps, rng = theta
         return sw * (nug + ps * _structure(kind, h / (rng * cutoff)) - g / scale)
 
-    best: np.ndarray | None = None
-    best_cost = np.inf
     # Starting values: the weighted SSE profiled over a grid of ranges, nugget and partial
     # sill solved exactly at each; the best few grid ranges are then refined jointly.
     ranges = np.geomspace(_MIN_RANGE_FACTOR, MAX_RANGE_FACTOR, 49)
@@ -536,17 +557,10 @@ def fit_variogram(
     for j in np.argsort(sse_g, kind="stable")[:_UNSHAPED_STARTS]:
         nug0 = min(max(float(nug_g[j]), nug_lo * (1.0 + 1e-6)),
                    0.5 * (nug_lo + nug_hi_ls) if np.isfinite(nug_hi_ls) else np.inf)
-        starts.append((nug0, max(float(ps_g[j]), 1e-3), float(ranges[j])))
-    for nug0, ps0, rng0 in starts:
-        x0 = np.array([nug0, ps0, min(max(rng0, _MIN_RANGE_FACTOR * (1 + 1e-9)),
-                                      MAX_RANGE_FACTOR * (1 - 1e-9))])
-        try:
-            sol = least_squares(residuals, x0, bounds=(lo, hi), method="trf",
-                                xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=2000)
-        except (ValueError, np.linalg.LinAlgError):
-            continue
-        if np.all(np.isfinite(sol.x)) and sol.cost < best_cost:
-            best, best_cost = sol.x, sol.cost
+        rng0 = min(max(float(ranges[j]), _MIN_RANGE_FACTOR * (1 + 1e-9)),
+                   MAX_RANGE_FACTOR * (1 - 1e-9))
+        starts.append(np.array([nug0, max(float(ps_g[j]), 1e-3), rng0]))
+    best = best_least_squares(residuals, starts, lo, hi)
     if best is None:
         raise ModelFitError(f"{kind} variogram fit did not converge from any starting value")
     nug, ps, rng = (0.0 if v < 1e-12 else v for v in best)
@@ -631,8 +645,7 @@ def _fit_shaped(
         nug, ps, rng, shape = theta
         return sw * (nug + ps * _shaped_structure(kind, x / rng, shape) - g)
 
-    best: np.ndarray | None = None
-    best_cost = np.inf
+    starts = []
     for i in order[:_SHAPED_STARTS]:
         j = best_r[i]
         x0 = np.array([nug_g[i, j], max(ps_g[i, j], 1e-3), ranges[j], shapes[i]])
@@ -640,13 +653,8 @@ def _fit_shaped(
                      np.where(np.isfinite(hi), hi * (1.0 - 1e-9), np.inf))
         if hi[0] - lo[0] < 1e-6 * max(1.0, lo[0]):
             x0[0] = 0.5 * (lo[0] + hi[0])          # a held nugget
-        try:
-            sol = least_squares(residuals, x0, bounds=(lo, hi), method="trf",
-                                xtol=1e-12, ftol=1e-12, gtol=1e-12, max_nfev=2000)
-        except (ValueError, np.linalg.LinAlgError):
-            continue
-        if np.all(np.isfinite(sol.x)) and sol.cost < best_cost:
-            best, best_cost = sol.x, sol.cost
+        starts.append(x0)
+    best = best_least_squares(residuals, starts, lo, hi)
     if best is None:
         raise ModelFitError(f"{kind} variogram fit did not converge from any starting value")
     nug, ps, rng = (0.0 if v < 1e-12 else float(v) for v in best[:3])

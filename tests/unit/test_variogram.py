@@ -328,3 +328,19 @@ def test_cressie_hawkins_resists_a_gross_outlier(meuse):
     # Matheron: median +55 %, up to +194 %; Cressie-Hawkins: median +10 %, up to +27 %.
     assert np.median(change["cressie-hawkins"]) < 0.3 * np.median(change["matheron"])
     assert change["cressie-hawkins"].max() < 0.3 * change["matheron"].max()
+
+
+def test_best_least_squares_keeps_the_lowest_of_several_minima():
+    # common practice, no source: (x - 2)(x + 1) vanishes at both 2 and -1; the second
+    # residual makes x = 2 the global minimum (cost 0) and x = -1 a local one.
+    from pmap.geostats.variogram import best_least_squares
+
+    def residuals(x):
+        return np.array([(x[0] - 2.0) * (x[0] + 1.0), 0.3 * (x[0] - 2.0)])
+
+    lo, hi = np.array([-5.0]), np.array([5.0])
+    best = best_least_squares(residuals, [np.array([-1.1]), np.array([2.1])], lo, hi)
+    assert best[0] == pytest.approx(2.0, abs=1e-6)
+    local = best_least_squares(residuals, [np.array([-1.1])], lo, hi)
+    assert local[0] == pytest.approx(-1.0, abs=0.1)
+    assert best_least_squares(residuals, [np.array([9.0])], lo, hi) is None   # infeasible
