@@ -9,6 +9,12 @@ updated when at most three samples changed (rank-one downdate of a dropped row, 
 appended row per new sample), else a fresh Cholesky factorisation; then one triangular
 solve.  Blocks of targets run in parallel threads.
 
+The same bucket search (:func:`knn_rows`, :func:`knn_targets`) and Cholesky factorisation
+(:func:`_cholesky`; :func:`simple_kriging_sets` for simple kriging with known mean 0) are
+the numba engine of the module's public ``NeighbourSearch`` and ``simple_kriging_weights``,
+which :mod:`pmap.geostats.simulation` uses, with :func:`earlier_knn` for its brute force
+within a block of the path.
+
 Compiled on first use and cached on disk (``cache=True``); see docs/geostatistics.md for
 the measured compile cost.
 """
@@ -49,7 +55,11 @@ def _cov(h: float, kind: int, nug: float, ps: float, rng: float, shape: float) -
 @njit(cache=True)
 def _knn(tx, ty, self_index, xy, bstart, border, b0x, b0y, bsize, nbx, nby, k, radius2,
          best_d, best_i):
-    """The k nearest samples of (tx, ty) within the radius; returns how many were found."""
+    """The k nearest samples of (tx, ty) within the radius; returns how many were found.
+
+    ``best_d`` receives squared distances, ``best_i`` sample indices, nearest first; equally
+    distant samples are ordered, and cut at the k-th place, by their index.
+    """
     bx = int((tx - b0x) / bsize)
     by = int((ty - b0y) / bsize)
     bx = min(max(bx, 0), nbx - 1)
@@ -80,11 +90,12 @@ def _knn(tx, ty, self_index, xy, bstart, border, b0x, b0y, bsize, nbx, nby, k, r
                         if cnt < k:
                             pos = cnt
                             cnt += 1
-                        elif d2 < best_d[k - 1]:
+                        elif d2 < best_d[k - 1] or (d2 == best_d[k - 1] and j < best_i[k - 1]):
                             pos = k - 1
                         else:
                             continue
-                        while pos > 0 and best_d[pos - 1] > d2:
+                        while pos > 0 and (best_d[pos - 1] > d2
+                                           or (best_d[pos - 1] == d2 and best_i[pos - 1] > j)):
                             best_d[pos] = best_d[pos - 1]
                             best_i[pos] = best_i[pos - 1]
                             pos -= 1
@@ -108,7 +119,7 @@ def _knn(tx, ty, self_index, xy, bstart, border, b0x, b0y, bsize, nbx, nby, k, r
         gap = max(gap, 0.0)
         if gap * gap > radius2:
             break
-        if cnt == k and gap * gap >= best_d[k - 1]:
+        if cnt == k and gap * gap > best_d[k - 1]:   # '>': a tie may still win on index
             break
         r += 1
     return cnt
@@ -119,6 +130,18 @@ def _factorise(xy, z, members, kk, kind, nug, ps, rng, shape, L, u, g):
     """Cholesky of the set's covariance matrix into L; u = C^-1 1, g = C^-1 (z - m 1).
 
     Returns (s, mean, regularised).
+    """
+    regularised = _cholesky(xy, members, kk, kind, nug, ps, rng, shape, L)
+    s, mean = _solve_u_g(xy, z, members, kk, L, u, g)
+    return s, mean, regularised
+
+
+@njit(cache=True)
+def _cholesky(xy, members, kk, kind, nug, ps, rng, shape, L):
+    """Cholesky factor of the unit-sill covariance matrix of the set ``members`` into L.
+
+    A pivot below ``_RCOND`` restarts with a diagonal jitter (1e-10, then x100 each time).
+    Returns whether a jitter was needed.
     """
     jitter = 0.0
     regularised = False
@@ -150,8 +173,7 @@ def _factorise(xy, z, members, kk, kind, nug, ps, rng, shape, L, u, g):
             break
         regularised = True
         jitter = 1e-10 if jitter == 0.0 else jitter * 100.0
-    s, mean = _solve_u_g(xy, z, members, kk, L, u, g)
-    return s, mean, regularised
+    return regularised
 
 
 @njit(cache=True)
@@ -411,6 +433,128 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
         counts[bi, 0] = n_sets
         counts[bi, 1] = n_reg
         counts[bi, 2] = n_empty
+
+
+@njit(cache=True)
+def knn_rows(xy, txy, self_index, bstart, border, b0x, b0y, bsize, nbx, nby, k, radius2,
+             lo, hi, out_i, out_d):
+    """The ``k`` nearest samples of targets ``lo..hi-1`` by :func:`_knn`, in one thread.
+
+    ``out_i`` (m, k) receives sample indices nearest first (ties by index) and ``-1`` in
+    empty slots; ``out_d`` (m, k) the distances, ``inf`` in empty slots.
+    """
+    best_d = np.empty(k)
+    best_i = np.empty(k, dtype=np.int64)
+    for t in range(lo, hi):
+        cnt = _knn(txy[t, 0], txy[t, 1], self_index[t], xy, bstart, border, b0x, b0y,
+                   bsize, nbx, nby, k, radius2, best_d, best_i)
+        for j in range(cnt):
+            out_i[t, j] = best_i[j]
+            out_d[t, j] = np.sqrt(best_d[j])
+        for j in range(cnt, k):
+            out_i[t, j] = -1
+            out_d[t, j] = np.inf
+
+
+@njit(cache=True, parallel=True)
+def knn_targets(xy, txy, self_index, bstart, border, b0x, b0y, bsize, nbx, nby, k, radius2,
+                block, out_i, out_d):
+    """:func:`knn_rows` for all targets, blocks of ``block`` targets in parallel threads."""
+    m = txy.shape[0]
+    n_blocks = (m + block - 1) // block
+    for bi in prange(n_blocks):
+        knn_rows(xy, txy, self_index, bstart, border, b0x, b0y, bsize, nbx, nby, k, radius2,
+                 bi * block, min((bi + 1) * block, m), out_i, out_d)
+
+
+@njit(cache=True)
+def earlier_knn(pts, k, radius2, out_i):
+    """Brute force: each point's ``k`` nearest among the points before it in ``pts``.
+
+    ``out_i`` (b, k) receives indices into ``pts``, nearest first (squared distance, then
+    index, as :func:`_knn`), ``-1`` where a point has fewer within the radius.  One
+    thread: it serves blocks of about a thousand points, for which starting the threads
+    of a parallel loop costs more than it saves.
+    """
+    b = pts.shape[0]
+    for r in range(b):
+        best_d = np.empty(k)
+        best_i = np.empty(k, dtype=np.int64)
+        cnt = 0
+        tx = pts[r, 0]
+        ty = pts[r, 1]
+        for j in range(r):
+            dx = pts[j, 0] - tx
+            dy = pts[j, 1] - ty
+            d2 = dx * dx + dy * dy
+            if d2 > radius2:
+                continue
+            if cnt < k:
+                pos = cnt
+                cnt += 1
+            elif d2 < best_d[k - 1]:                # j only grows: a tie never wins here
+                pos = k - 1
+            else:
+                continue
+            while pos > 0 and best_d[pos - 1] > d2:
+                best_d[pos] = best_d[pos - 1]
+                best_i[pos] = best_i[pos - 1]
+                pos -= 1
+            best_d[pos] = d2
+            best_i[pos] = j
+        for i in range(cnt):
+            out_i[r, i] = best_i[i]
+        for i in range(cnt, k):
+            out_i[r, i] = -1
+
+
+@njit(cache=True, parallel=True)
+def simple_kriging_sets(xy, txy, sets, kind, nug, ps, rng, shape, block, weights, var, counts):
+    """Simple kriging (known mean 0, unit sill) of each target from its own point set.
+
+    ``sets`` (m, k) holds indices into ``xy``, the filled slots first and ``-1`` after them.
+    Per target: the set's Cholesky factor (:func:`_cholesky`), ``y = L^-1 c0``, the
+    variance ``1 - y'y`` into ``var`` and the weights ``L'^-1 y`` into ``weights`` (0 in
+    empty slots).  ``counts`` (n_blocks,) receives the regularised systems per block.
+    """
+    m, k = sets.shape
+    n_blocks = (m + block - 1) // block
+    for bi in prange(n_blocks):
+        L = np.zeros((k, k))
+        members = np.empty(k, dtype=np.int64)
+        y = np.empty(k)
+        n_reg = 0
+        for t in range(bi * block, min((bi + 1) * block, m)):
+            kk = 0
+            while kk < k and sets[t, kk] >= 0:
+                members[kk] = sets[t, kk]
+                kk += 1
+            for i in range(kk, k):
+                weights[t, i] = 0.0
+            if kk == 0:
+                var[t] = 1.0
+                continue
+            if _cholesky(xy, members, kk, kind, nug, ps, rng, shape, L):
+                n_reg += 1
+            tx = txy[t, 0]
+            ty = txy[t, 1]
+            qq = 0.0
+            for i in range(kk):
+                dx = xy[members[i], 0] - tx
+                dy = xy[members[i], 1] - ty
+                acc = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
+                for p in range(i):
+                    acc -= L[i, p] * y[p]
+                y[i] = acc / L[i, i]
+                qq += y[i] * y[i]
+            for i in range(kk - 1, -1, -1):
+                acc = y[i]
+                for p in range(i + 1, kk):
+                    acc -= L[p, i] * weights[t, p]
+                weights[t, i] = acc / L[i, i]
+            vv = 1.0 - qq
+            var[t] = vv if vv > 0.0 else 0.0
+        counts[bi] = n_reg
 
 
 @njit(cache=True, parallel=True)

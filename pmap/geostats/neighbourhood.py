@@ -24,6 +24,10 @@ slots are padded with decoupled dummies of weight 0); targets with none get NaN.
 
 Memory is bounded by the block size: peak use does not grow with the number of targets
 beyond the three output arrays.
+
+The pieces shared with sequential simulation (:mod:`pmap.geostats.simulation`) are public:
+:class:`NeighbourSearch` (the k nearest within a radius, ties by index, either engine) and
+:func:`simple_kriging_weights` (the same factorisation, simple kriging with mean 0).
 """
 
 from __future__ import annotations
@@ -43,7 +47,10 @@ from pmap.geostats.variogram import VariogramModel, _check_points, _semivariance
 __all__ = [
     "ENGINES",
     "numba_available",
+    "resolve_engine",
     "LocalSystems",
+    "NeighbourSearch",
+    "simple_kriging_weights",
     "merge_close_samples",
     "local_ordinary_kriging",
     "local_leave_one_out",
@@ -61,6 +68,8 @@ ENGINES: tuple[str, ...] = ("auto", "numba", "numpy")
 _NUMBA_KINDS = ("spherical", "exponential", "gaussian", "stable")
 # Targets per parallel block of the compiled kernel.
 _NUMBA_BLOCK = 2048
+# Local systems per batch of the numpy simple-kriging solve: memory about 4 x this x k^2 floats.
+_SK_BLOCK = 2048
 # Multipliers of the set hash (odd 64-bit integers; fixed so runs are reproducible).
 _HASH = np.random.default_rng(20261202).integers(1, 2**63 - 1, size=512, dtype=np.uint64) | 1
 
@@ -133,6 +142,27 @@ def _factorise_sets(
     n = z.size
     real = sets < n
     safe = np.where(real, sets, 0)
+    chol, regularised = _cholesky_sets(xy, safe, real, model)
+    f = real.astype(float)
+    u = _cho_solve_batch(chol, f)
+    s = np.einsum("bk,bk->b", f, u)
+    zz = np.where(real, z[safe], 0.0)
+    mean = np.einsum("bk,bk->b", u, zz) / s
+    g = _cho_solve_batch(chol, zz - mean[:, None] * f)
+    return chol, u, s, mean, g, real, regularised
+
+
+def _cholesky_sets(
+    xy: np.ndarray, safe: np.ndarray, real: np.ndarray, model: VariogramModel
+) -> tuple[np.ndarray, int]:
+    """Batched Cholesky factors of the unit-sill covariance matrices of point sets.
+
+    ``safe`` (B, k) indexes ``xy``; slots where ``real`` is False are decoupled dummies
+    (covariance 1 on the diagonal, 0 elsewhere).  A set whose reciprocal condition
+    estimate ``(min diag L / max diag L)^2`` is below ``_RCOND_LOCAL`` gets a diagonal
+    jitter lifting its smallest eigenvalue to 1e-10.  Returns the factors (B, k, k) and
+    the number of sets regularised.
+    """
     p = xy[safe]                                            # (B, k, 2)
     diff = p[:, :, None, :] - p[:, None, :, :]
     h = np.sqrt(np.einsum("bijc,bijc->bij", diff, diff))
@@ -141,7 +171,7 @@ def _factorise_sets(
     np.subtract(1.0, cov, out=cov)                          # unit sill: C = 1 - gamma
     pair_real = real[:, :, None] & real[:, None, :]
     cov[~pair_real] = 0.0
-    k = sets.shape[1]
+    k = safe.shape[1]
     eye = np.eye(k, dtype=bool)
     cov[:, eye] = 1.0                                       # dummies decoupled, C = 1
     regularised = 0
@@ -160,13 +190,7 @@ def _factorise_sets(
         fixed[:, eye] += jitter
         cov[bad] = fixed
         chol = np.linalg.cholesky(cov)
-    f = real.astype(float)
-    u = _cho_solve_batch(chol, f)
-    s = np.einsum("bk,bk->b", f, u)
-    zz = np.where(real, z[safe], 0.0)
-    mean = np.einsum("bk,bk->b", u, zz) / s
-    g = _cho_solve_batch(chol, zz - mean[:, None] * f)
-    return chol, u, s, mean, g, real, regularised
+    return chol, regularised
 
 
 def _forward(chol: np.ndarray, rhs: np.ndarray) -> np.ndarray:
@@ -198,6 +222,248 @@ def _check_neighbourhood(neighbours: int, radius: float | None) -> None:
         raise ValueError(f"neighbours must be a whole number >= 1, got {neighbours!r}")
     if radius is not None and not (np.isfinite(radius) and radius > 0):
         raise ValueError(f"radius must be a positive distance in m, got {radius!r}")
+
+
+class NeighbourSearch:
+    """The ``k`` nearest of a fixed set of points, within a radius: the engines' one search.
+
+    Local kriging (:func:`local_ordinary_kriging`) and sequential simulation
+    (:mod:`pmap.geostats.simulation`) find neighbours with it.  The numba engine bins the
+    points in square buckets of about ``k / 2`` points and searches rings of buckets
+    (:func:`pmap.geostats._local_numba.knn_targets`); the numpy engine queries a KD-tree
+    (``scipy.spatial.cKDTree``).  Both return the same neighbours in the same order:
+    nearest first, equally distant points by their index (also at the k-th place), and
+    bit-identical distances ``sqrt(dx*dx + dy*dy)``.
+
+    Distances are plain Euclidean in the coordinates given: pass a model's
+    :meth:`~pmap.geostats.variogram.VariogramModel.isotropic_coords` for an anisotropic one.
+
+    Parameters
+    ----------
+    points : numpy.ndarray, shape (n, 2)
+        Points searched, m; ``n`` may be 0.
+    k : int
+        Neighbours per query, >= 1.
+    radius : float, optional
+        Search radius, m: farther points are not returned (the bound carries a relative
+        allowance of 1e-12 for round-off).
+    engine : {"auto", "numba", "numpy"}
+        As in :func:`local_ordinary_kriging`; "auto" takes numba when it is installed,
+        unless ``PMAP_NUMPY_ONLY`` is set.
+    """
+
+    def __init__(
+        self, points: np.ndarray, k: int, radius: float | None = None, *, engine: str = "auto"
+    ) -> None:
+        points = np.ascontiguousarray(points, dtype=float)
+        if points.ndim != 2 or points.shape[1] != 2:
+            raise ValueError(f"points must have shape (n, 2), got {points.shape}")
+        _check_neighbourhood(k, radius)
+        self.points = points
+        self.k = int(k)
+        self.radius = None if radius is None else float(radius)
+        self.engine = resolve_engine(engine)
+        self._bound = np.inf if radius is None else float(radius) * (1.0 + 1e-12)
+        if points.shape[0] and self.engine == "numba":
+            self._buckets = _buckets(points, self.k)
+        elif points.shape[0]:
+            self._tree = cKDTree(points, balanced_tree=False)
+
+    def query(
+        self, queries: np.ndarray, *, exclude: np.ndarray | None = None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """Indices and distances of each query's ``k`` nearest points.
+
+        Parameters
+        ----------
+        queries : numpy.ndarray, shape (m, 2)
+            Query points, m.
+        exclude : numpy.ndarray of int, shape (m,), optional
+            Per query, the index of one point not to return (``-1`` for none), e.g. the
+            query's own index when the queries are the points (leave-one-out).
+
+        Returns
+        -------
+        index : numpy.ndarray of int64, shape (m, k)
+            Point indices, nearest first; ``-1`` in slots left empty (fewer points, or
+            none within the radius).
+        distance : numpy.ndarray, shape (m, k)
+            Their distances, m; ``inf`` in empty slots.
+        """
+        queries = np.ascontiguousarray(queries, dtype=float).reshape(-1, 2)
+        m, n, k = queries.shape[0], self.points.shape[0], self.k
+        if exclude is not None:
+            exclude = np.asarray(exclude, dtype=np.int64).reshape(m)
+        if n == 0 or m == 0:
+            return np.full((m, k), -1, dtype=np.int64), np.full((m, k), np.inf)
+        if self.engine == "numba":
+            return self._query_buckets(queries, exclude)
+        return self._query_tree(queries, exclude)
+
+    def _query_buckets(
+        self, queries: np.ndarray, exclude: np.ndarray | None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        from pmap.geostats._local_numba import knn_rows, knn_targets
+
+        m = queries.shape[0]
+        border, bstart, b0x, b0y, size, nbx, nby = self._buckets
+        own = np.full(m, -1, dtype=np.int64) if exclude is None else exclude
+        index = np.empty((m, self.k), dtype=np.int64)
+        distance = np.empty((m, self.k))
+        args = (self.points, queries, own, bstart, border, b0x, b0y, size, nbx, nby, self.k,
+                self._bound**2)
+        if m <= _NUMBA_BLOCK:                   # one block: no threads to start
+            knn_rows(*args, 0, m, index, distance)
+        else:
+            knn_targets(*args, _NUMBA_BLOCK, index, distance)
+        return index, distance
+
+    def _tree_rows(
+        self, queries: np.ndarray, width: int, exclude: np.ndarray | None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        """The KD-tree's ``width`` nearest (ties in its own order), ``exclude`` dropped."""
+        extra = 0 if exclude is None else 1
+        d, i = self._tree.query(queries, k=width + extra, distance_upper_bound=self._bound,
+                                workers=-1)
+        d = d.reshape(-1, width + extra)
+        i = i.reshape(-1, width + extra)
+        if exclude is not None:
+            drop = i == exclude[:, None]
+            drop[~drop.any(axis=1), -1] = True              # not among them: drop the last
+            keep = ~drop
+            d = d[keep].reshape(-1, width)
+            i = i[keep].reshape(-1, width)
+        return d, i
+
+    def _by_index(self, queries: np.ndarray, d: np.ndarray, i: np.ndarray) -> np.ndarray:
+        """Order of each row by squared distance ``dx*dx + dy*dy``, then index: the bucket
+        search's order (two squared distances may share one square root)."""
+        n = self.points.shape[0]
+        p = self.points[np.minimum(i, n - 1)]
+        dx = p[:, :, 0] - queries[:, 0, None]
+        dy = p[:, :, 1] - queries[:, 1, None]
+        d2 = np.where(np.isfinite(d), dx * dx + dy * dy, np.inf)
+        return np.lexsort((i, d2))
+
+    def _query_tree(
+        self, queries: np.ndarray, exclude: np.ndarray | None
+    ) -> tuple[np.ndarray, np.ndarray]:
+        n, k = self.points.shape[0], self.k
+        if exclude is not None and not np.any(exclude >= 0):
+            exclude = None
+        avail = n - (0 if exclude is None else 1)
+        width = min(k + 1, avail)                           # one more: ties at the k-th place
+        d, i = self._tree_rows(queries, width, exclude)
+        if width > k:
+            kth = d[:, k - 1]
+            open_rows = np.flatnonzero(np.isfinite(d[:, k]) & (d[:, k] == kth))
+            d, i = d[:, :k].copy(), i[:, :k].copy()
+            while open_rows.size:                           # widen until past the tie
+                width = min(2 * width, avail)
+                dw, iw = self._tree_rows(queries[open_rows], width,
+                                         None if exclude is None else exclude[open_rows])
+                still = (width < avail) & (dw[:, -1] == kth[open_rows])
+                done = ~still
+                rows = open_rows[done]
+                order = self._by_index(queries[rows], dw[done], iw[done])[:, :k]
+                d[rows] = np.take_along_axis(dw[done], order, axis=1)
+                i[rows] = np.take_along_axis(iw[done], order, axis=1)
+                open_rows = open_rows[still]
+        elif width < k:
+            d = np.hstack([d, np.full((d.shape[0], k - width), np.inf)])
+            i = np.hstack([i, np.full((i.shape[0], k - width), n, dtype=i.dtype)])
+        tie = np.flatnonzero(np.any((d[:, 1:] == d[:, :-1]) & np.isfinite(d[:, 1:]), axis=1))
+        if tie.size:                                        # equal distances: by index
+            order = self._by_index(queries[tie], d[tie], i[tie])
+            d[tie] = np.take_along_axis(d[tie], order, axis=1)
+            i[tie] = np.take_along_axis(i[tie], order, axis=1)
+        i = i.astype(np.int64, copy=False)
+        i[i >= n] = -1
+        return i, d
+
+
+def simple_kriging_weights(
+    points: np.ndarray,
+    targets: np.ndarray,
+    sets: np.ndarray,
+    model: VariogramModel,
+    *,
+    engine: str = "auto",
+) -> tuple[np.ndarray, np.ndarray, int]:
+    """Simple kriging (known mean 0) of each target from its own set of points.
+
+    For target ``t`` with points ``S = sets[t]``: weights ``w = C_SS^-1 c_S`` and standard
+    deviation ``sqrt(sill - w' c_S)``, where ``C`` is the model's covariance
+    ``sill - gamma(h)``.  Each set's covariance matrix is factorised by the engine's
+    Cholesky (:func:`pmap.geostats._local_numba.simple_kriging_sets` for numba, one batched
+    ``numpy.linalg.cholesky`` per 2,048 targets for numpy) with the regularisation of
+    :func:`local_ordinary_kriging` for a nearly singular set.
+
+    Parameters
+    ----------
+    points : numpy.ndarray, shape (n, 2)
+        Coordinates of the conditioning points, m.
+    targets : numpy.ndarray, shape (m, 2)
+        Coordinates of the targets, m.
+    sets : numpy.ndarray of int, shape (m, k)
+        Indices into ``points`` per target; ``-1`` marks an empty slot.  The numba engine
+        needs the filled slots first (as :meth:`NeighbourSearch.query` returns them).
+    model : VariogramModel
+        Covariance model (positive sill); anisotropy is applied to both coordinate sets.
+    engine : {"auto", "numba", "numpy"}
+        As in :func:`local_ordinary_kriging` (matern models need "numpy" or "auto").
+
+    Returns
+    -------
+    weights : numpy.ndarray, shape (m, k)
+        Simple-kriging weights, 0 in empty slots.
+    sd : numpy.ndarray, shape (m,)
+        Simple-kriging standard deviation, square root of squared value units; ``sqrt(sill)``
+        for a target with an empty set.
+    regularised : int
+        Local systems that were ill-conditioned and got a diagonal jitter.
+    """
+    points = np.asarray(points, dtype=float)
+    targets = np.asarray(targets, dtype=float)
+    sets = np.asarray(sets, dtype=np.int64)
+    m = targets.shape[0]
+    if sets.ndim != 2 or sets.shape[0] != m:
+        raise ValueError(f"sets must have shape ({m}, k), got {sets.shape}")
+    if not model.sill > 0:
+        raise ValueError("simple kriging needs a model with a positive sill")
+    scale = model.sill
+    unit = model.with_sill_scaled(1.0 / scale)
+    xy = np.ascontiguousarray(unit.isotropic_coords(points))
+    txy = np.ascontiguousarray(unit.isotropic_coords(targets))
+    k = sets.shape[1]
+    weights = np.zeros((m, k))
+    var = np.ones(m)
+    regularised = 0
+    if m and k and _use_numba(engine, unit.kind):
+        from pmap.geostats._local_numba import simple_kriging_sets
+
+        counts = np.zeros((m + _NUMBA_BLOCK - 1) // _NUMBA_BLOCK, dtype=np.int64)
+        simple_kriging_sets(xy, txy, np.ascontiguousarray(sets), *kernel_model_args(unit),
+                            _NUMBA_BLOCK, weights, var, counts)
+        regularised = int(counts.sum())
+    elif m and k:
+        for c0 in range(0, m, _SK_BLOCK):
+            c1 = min(c0 + _SK_BLOCK, m)
+            ids = sets[c0:c1]
+            real = ids >= 0
+            safe = np.where(real, ids, 0)
+            chol, reg = _cholesky_sets(xy, safe, real, unit)
+            regularised += reg
+            p = xy[safe]
+            d = np.hypot(p[:, :, 0] - txy[c0:c1, 0, None], p[:, :, 1] - txy[c0:c1, 1, None])
+            rhs = np.empty_like(d)
+            _semivariance_into(unit, d, rhs)
+            np.subtract(1.0, rhs, out=rhs)
+            rhs[~real] = 0.0
+            y = _forward(chol, rhs)
+            weights[c0:c1] = _backward(chol, y)
+            var[c0:c1] = np.maximum(1.0 - np.einsum("tk,tk->t", y, y), 0.0)
+    return weights, np.sqrt(var * scale), regularised
 
 
 def local_ordinary_kriging(
@@ -265,8 +531,7 @@ def local_ordinary_kriging(
     txy = unit.isotropic_coords(targets)
     if _use_numba(engine, unit.kind):
         return _numba_path(xy, values, txy, unit, scale, k, radius, exclude_self)
-    tree = cKDTree(xy)
-    bound = np.inf if radius is None else float(radius) * (1.0 + 1e-12)
+    search = NeighbourSearch(xy, k, radius, engine="numpy")
     estimate = np.full(m, np.nan)
     variance = np.full(m, np.nan)
     lagrange = np.full(m, np.nan)
@@ -274,16 +539,8 @@ def local_ordinary_kriging(
     step = max(1, int(block))
     for s0 in range(0, m, step):
         s1 = min(s0 + step, m)
-        kk = k + 1 if exclude_self else k
-        dist, idx = tree.query(txy[s0:s1], k=kk, distance_upper_bound=bound, workers=-1)
-        dist = dist.reshape(s1 - s0, kk)
-        idx = idx.reshape(s1 - s0, kk)
-        if exclude_self:
-            own = np.arange(s0, s1)[:, None]
-            drop = idx == own
-            # Drop the target's own index; if it was not found, drop the farthest slot.
-            drop[~drop.any(axis=1), -1] = True
-            idx = idx[~drop].reshape(s1 - s0, k)
+        idx, _ = search.query(txy[s0:s1], exclude=np.arange(s0, s1) if exclude_self else None)
+        idx[idx < 0] = n                                    # empty slots sort last
         idx.sort(axis=1)
         has = idx[:, 0] < n
         empty += int((~has).sum())
@@ -338,17 +595,42 @@ def numba_available() -> bool:
     return True
 
 
-def _use_numba(engine: str, kind: str) -> bool:
+def resolve_engine(engine: str, kind: str | None = None) -> str:
+    """The implementation ``engine`` stands for: ``"numba"`` or ``"numpy"``.
+
+    Parameters
+    ----------
+    engine : {"auto", "numba", "numpy"}
+        "auto" takes numba when it is installed and evaluates ``kind`` (not matern), unless
+        the environment variable ``PMAP_NUMPY_ONLY`` is set.
+    kind : str, optional
+        Variogram family the engine will evaluate; ``None`` when it evaluates none (the
+        neighbour search).
+
+    Raises
+    ------
+    ValueError
+        An unknown engine, or "numba" for a family it does not evaluate.
+    ImportError
+        "numba" without numba installed.
+    """
+    if engine not in ENGINES:
+        raise ValueError(f"engine must be one of {ENGINES}, got {engine!r}")
     if engine == "numpy":
-        return False
-    supported = kind in _NUMBA_KINDS
+        return "numpy"
+    supported = kind is None or kind in _NUMBA_KINDS
     if engine == "numba":
         if not numba_available():
             raise ImportError("engine='numba' needs the numba package (pip install numba)")
         if not supported:
             raise ValueError(f"the numba engine does not evaluate {kind!r} models; use 'numpy'")
-        return True
-    return supported and numba_available() and not os.environ.get("PMAP_NUMPY_ONLY")
+        return "numba"
+    use = supported and numba_available() and not os.environ.get("PMAP_NUMPY_ONLY")
+    return "numba" if use else "numpy"
+
+
+def _use_numba(engine: str, kind: str | None) -> bool:
+    return resolve_engine(engine, kind) == "numba"
 
 
 def kernel_model_args(unit: VariogramModel) -> tuple[int, float, float, float, float]:

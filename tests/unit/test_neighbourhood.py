@@ -9,10 +9,13 @@ from pmap.errors import PmapWarning
 from pmap.geostats.crossval import loo_kriging
 from pmap.geostats.kriging import KrigingSystem, ordinary_kriging
 from pmap.geostats.neighbourhood import (
+    NeighbourSearch,
     local_leave_one_out,
     local_ordinary_kriging,
     merge_close_samples,
     numba_available,
+    resolve_engine,
+    simple_kriging_weights,
 )
 from pmap.geostats.variogram import VariogramModel
 
@@ -194,3 +197,103 @@ def test_updated_factors_match_fresh_factorisations():
     fresh = local_ordinary_kriging(xy, z, targets, model, 32, engine="numpy")
     for a, b in zip(fast[:3], fresh[:3], strict=True):
         np.testing.assert_allclose(a, b, atol=1e-9)
+
+
+def _nearest_by_brute_force(points, queries, k, radius=None, exclude=None):
+    """The k nearest by squared distance dx*dx + dy*dy, then index; -1 / inf padding."""
+    dx = points[None, :, 0] - queries[:, None, 0]
+    dy = points[None, :, 1] - queries[:, None, 1]
+    d2 = dx * dx + dy * dy
+    if exclude is not None:
+        d2[np.arange(len(queries)), exclude] = np.inf
+    if radius is not None:
+        d2[d2 > (radius * (1.0 + 1e-12)) ** 2] = np.inf
+    index = np.broadcast_to(np.arange(len(points)), d2.shape)
+    order = np.lexsort((index, d2))[:, :k]
+    dist = np.sqrt(np.take_along_axis(d2, order, axis=1))
+    order[~np.isfinite(dist)] = -1
+    pad = k - order.shape[1]
+    return (np.pad(order, ((0, 0), (0, pad)), constant_values=-1),
+            np.pad(dist, ((0, 0), (0, pad)), constant_values=np.inf))
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+@pytest.mark.parametrize("layout", ["grid", "scattered", "mixed"])
+def test_neighbour_search_is_exact_with_ties_broken_by_index(engine, layout):
+    # On a grid many points are equally distant (often only to the last bit): both engines
+    # must order them, and cut them at the k-th place, by index.
+    rng = np.random.default_rng(4)
+    g = np.arange(30) * 0.1 + 0.05
+    grid = np.column_stack([a.ravel() for a in np.meshgrid(g, g)])
+    points = {"grid": grid, "scattered": rng.random((500, 2)) * 3.0,
+              "mixed": np.vstack([grid[rng.permutation(900)[:400]], rng.random((50, 2)) * 3.0])
+              }[layout]
+    queries = np.vstack([grid[:300], rng.random((200, 2)) * 3.2 - 0.1])
+    for k in (1, 5, 16, 33):
+        for radius in (None, 0.25):
+            index, dist = NeighbourSearch(points, k, radius, engine=engine).query(queries)
+            want_i, want_d = _nearest_by_brute_force(points, queries, k, radius)
+            np.testing.assert_array_equal(index, want_i)
+            np.testing.assert_array_equal(dist, want_d)
+    own = np.arange(300)
+    index, dist = NeighbourSearch(points, 16, engine=engine).query(points[:300], exclude=own)
+    want_i, want_d = _nearest_by_brute_force(points, points[:300], 16, exclude=own)
+    np.testing.assert_array_equal(index, want_i)
+    np.testing.assert_array_equal(dist, want_d)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_neighbour_search_pads_when_points_are_few(engine):
+    points = np.array([[0.0, 0.0], [1.0, 0.0], [3.0, 0.0]])
+    index, dist = NeighbourSearch(points, 5, radius=2.0, engine=engine).query([[0.5, 0.0]])
+    np.testing.assert_array_equal(index, [[0, 1, -1, -1, -1]])
+    np.testing.assert_array_equal(dist, [[0.5, 0.5, np.inf, np.inf, np.inf]])
+    index, dist = NeighbourSearch(np.empty((0, 2)), 2, engine=engine).query([[0.0, 0.0]])
+    np.testing.assert_array_equal(index, [[-1, -1]])
+    assert resolve_engine(engine) == engine
+
+
+def _dense_simple_kriging(points, target, model):
+    """Simple kriging by a dense solve; the covariance sill - gamma(h) in the model's
+    isotropic coordinates."""
+    xy = model.isotropic_coords(points)
+    t = model.isotropic_coords(target)
+    c = model.covariance(np.hypot(*(xy[:, None, :] - xy[None, :, :]).transpose(2, 0, 1)))
+    c0 = model.covariance(np.hypot(*(xy - t).T))
+    w = np.linalg.solve(c, c0)
+    return w, np.sqrt(model.sill - w @ c0)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_simple_kriging_weights_match_a_dense_solve(field, engine):
+    # common practice, no source: simple kriging weights C^-1 c0, variance sill - w'c0.
+    xy, _, targets = field
+    model = VariogramModel("exponential", 0.05, 1.4, 300.0, ratio=0.5, angle=20.0)
+    sets = NeighbourSearch(model.isotropic_coords(xy), 12, radius=120.0, engine=engine).query(
+        model.isotropic_coords(targets[:300]))[0]
+    sets[0] = -1                                            # no conditioning point at all
+    weights, sd, regularised = simple_kriging_weights(xy, targets[:300], sets, model,
+                                                      engine=engine)
+    assert regularised == 0
+    assert sd[0] == pytest.approx(np.sqrt(model.sill)) and np.all(weights[0] == 0.0)
+    for t in range(1, 300):
+        filled = sets[t] >= 0
+        w, s = _dense_simple_kriging(xy[sets[t][filled]], targets[t], model)
+        np.testing.assert_allclose(weights[t][filled], w, atol=1e-10)
+        assert np.all(weights[t][~filled] == 0.0)
+        assert sd[t] == pytest.approx(s, abs=1e-10)
+
+
+def test_local_kriging_numpy_path_uses_the_neighbour_search(field, monkeypatch):
+    calls = []
+    query = NeighbourSearch.query
+
+    def spy(self, queries, **kw):
+        calls.append(len(queries))
+        return query(self, queries, **kw)
+
+    monkeypatch.setattr(NeighbourSearch, "query", spy)
+    xy, z, targets = field
+    local_ordinary_kriging(xy, z, targets, VariogramModel("spherical", 0.1, 1.0, 300.0), 8,
+                           engine="numpy", block=1000)
+    assert calls == [1000, 1000, 1000]
