@@ -197,6 +197,42 @@ def check(samples: Path, boundary: Path, config_path: Path | None, crs: str | No
     sys.exit(exit_code(problems))
 
 
+@cli.command()
+@click.argument("samples", type=click.Path(path_type=Path, dir_okay=False))
+@click.option("--out", "-o", required=True, type=click.Path(path_type=Path, dir_okay=False),
+              help="Parameter file to write (TOML; pass it to `pmap run --config`).")
+@click.option("--config", "-c", "config_path", type=click.Path(path_type=Path, dir_okay=False),
+              help="Configuration whose [soil], [samples] and [calibration] steer the fit.")
+@click.option("--crs", help="CRS of projected x/y sample columns, e.g. EPSG:32616.")
+@click.option("--overwrite", is_flag=True, help="Replace --out if it exists.")
+def calibrate(samples: Path, out: Path, config_path: Path | None, crs: str | None,
+              overwrite: bool) -> None:
+    """Fit the soil model to SAMPLES holding pH, total P and a lab soil-test P together.
+
+    Writes the calibrated parameters with their cross-validated error and confidence
+    intervals; reuse the file for the region's fields with `pmap run --config`.
+    """
+    from pmap.calibrate import calibrate_samples, write_calibration
+    from pmap.config import load_config
+
+    config = _run_safely(load_config, config_path)
+    calibration, method = _run_safely(calibrate_samples, samples, config, crs=crs)
+    _run_safely(write_calibration, calibration, method, out, samples_path=samples,
+                overwrite=overwrite)
+    click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
+    click.echo(f"wrote {out}: {calibration.n_pairs} pairs, fitted "
+               f"{', '.join(calibration.fitted)}")
+    click.echo(f"  cross-validated RMSE {calibration.cv_rmse:.3g} mg/kg, R^2 "
+               f"{calibration.cv_r2:.2f} (default parameters: RMSE "
+               f"{calibration.default_rmse:.3g} mg/kg)")
+    for name in calibration.fitted:
+        lo, hi = calibration.intervals[name]
+        click.echo(f"  {name} = {calibration.estimates[name]:.4g} (95 % interval "
+                   f"{lo:.4g} to {hi:.4g})")
+    for name, reason in calibration.held.items():
+        click.echo(f"  held {name}: {reason}")
+
+
 @cli.command("config")
 def config_reference() -> None:
     """Print every configuration key with its unit, default and source (Markdown)."""

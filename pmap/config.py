@@ -28,7 +28,10 @@ from pmap.prescribe.rates import RateRule
 from pmap.prescribe.zones import ZoneParams
 from pmap.soil.availability import PartitionParams
 from pmap.soil.conversions import SoilTestEquivalent
+from pmap.soil.calibration import CalibrationSettings
+from pmap.soil.environment import PsrParams
 from pmap.soil.fixation import FixationParams
+from pmap.soil.lime import LimeParams
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -159,6 +162,9 @@ class FieldConfig:
     soil: PartitionParams = dataclasses.field(default_factory=PartitionParams)
     fixation: FixationParams = dataclasses.field(default_factory=FixationParams)
     soil_test_equivalent: SoilTestEquivalent = dataclasses.field(default_factory=SoilTestEquivalent)
+    calibration: CalibrationSettings = dataclasses.field(default_factory=CalibrationSettings)
+    lime: LimeParams = dataclasses.field(default_factory=LimeParams)
+    environment: PsrParams = dataclasses.field(default_factory=PsrParams)
     rates: RateRule = dataclasses.field(default_factory=RateRule)
     zones: ZoneParams = dataclasses.field(default_factory=ZoneParams)
     clusters: ClusterParams = dataclasses.field(default_factory=ClusterParams)
@@ -217,7 +223,41 @@ def load_config(path: str | Path | None = None) -> FieldConfig:
         data = tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML ({exc})") from exc
-    return config_from_dict(data, source=str(path))
+    return config_from_dict(_with_calibration_file(data, path), source=str(path))
+
+
+#: Sections a calibration file (``calibration.file``) contributes to a config.
+_CALIBRATION_SECTIONS = ("soil", "soil_test_equivalent", "calibration")
+
+
+def _with_calibration_file(data: dict[str, Any], path: Path) -> dict[str, Any]:
+    """``data`` with the sections of its ``calibration.file`` underneath its own keys."""
+    name = data.get("calibration", {}).get("file") if isinstance(data.get("calibration"),
+                                                                  dict) else None
+    if not name:
+        return data
+    if not isinstance(name, str):
+        raise ConfigError(f"{path}: calibration.file must be a string, got {name!r}")
+    params_path = (path.parent / name) if not Path(name).is_absolute() else Path(name)
+    if not params_path.is_file():
+        raise ConfigError(f"{path}: calibration.file {name!r} not found (looked for "
+                          f"{params_path}); write it with pmap calibrate")
+    try:
+        params = tomllib.loads(params_path.read_text(encoding="utf-8-sig"))
+    except (OSError, UnicodeDecodeError, tomllib.TOMLDecodeError) as exc:
+        raise ConfigError(f"{params_path}: cannot read the calibration file ({exc})") from exc
+    unknown = sorted(set(params) - set(_CALIBRATION_SECTIONS))
+    if unknown:
+        raise ConfigError(f"{params_path}: a calibration file holds only "
+                          f"[{'], ['.join(_CALIBRATION_SECTIONS)}], found [{unknown[0]}]")
+    if params.get("calibration", {}).get("file"):
+        raise ConfigError(f"{params_path}: a calibration file cannot name another one")
+    merged = dict(data)
+    for section in _CALIBRATION_SECTIONS:
+        if section in params:
+            merged[section] = {**params[section], **data.get(section, {})}
+    merged["calibration"] = {**merged["calibration"], "file": str(params_path)}
+    return merged
 
 
 def config_from_dict(data: dict[str, Any], source: str = "config") -> FieldConfig:

@@ -83,7 +83,7 @@ def truth(x: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
     -------
     dict
         ``ph`` (pH units, water), ``total_p`` (mg/kg), ``stp`` (Mehlich-3 ICP P, mg/kg),
-        ``caco3`` (%), ``clay`` (%), ``om`` (%).
+        ``caco3`` (%), ``clay`` (%), ``om`` (%), ``buffer_ph`` (Mehlich buffer pH).
     """
     u = (np.asarray(x, float) - _ORIGIN[0]) / 1100.0
     v = (np.asarray(y, float) - _ORIGIN[1]) / 900.0
@@ -103,7 +103,9 @@ def truth(x: np.ndarray, y: np.ndarray) -> dict[str, np.ndarray]:
     caco3 = np.clip(5.0 * (ph - 7.3), 0.0, None)
     clay = 24.0 + 6.0 * np.sin(np.pi * u) * np.cos(np.pi * v * 0.7)
     om = 3.2 + 0.8 * np.cos(np.pi * (u + v) * 0.8)
-    return {"ph": ph, "total_p": total_p, "stp": stp, "caco3": caco3, "clay": clay, "om": om}
+    buffer_ph = 6.6 - 0.45 * np.clip(6.6 - ph, 0.0, None)
+    return {"ph": ph, "total_p": total_p, "stp": stp, "caco3": caco3, "clay": clay, "om": om,
+            "buffer_ph": buffer_ph}
 
 
 def _inside(points: np.ndarray, ring: np.ndarray) -> np.ndarray:
@@ -139,6 +141,7 @@ def demo_samples(seed: int = DEMO_SEED):
     caco3 = np.clip(soil["caco3"] + rng.normal(0.0, 0.15, n), 0.0, None)
     clay = soil["clay"] + rng.normal(0.0, 1.0, n)
     om = soil["om"] + rng.normal(0.0, 0.15, n)
+    buffer_ph = np.minimum(soil["buffer_ph"] + rng.normal(0.0, 0.03, n), 6.6)
     to_wgs84 = Transformer.from_crs(DEMO_CRS, "EPSG:4326", always_xy=True)
     lon, lat = to_wgs84.transform(points[:, 0], points[:, 1])
     return pd.DataFrame(
@@ -153,6 +156,7 @@ def demo_samples(seed: int = DEMO_SEED):
             "caco3": np.round(caco3, 1),
             "clay": np.round(clay, 0),
             "om": np.round(om, 1),
+            "buffer_ph": np.round(buffer_ph, 2),
         }
     )
 

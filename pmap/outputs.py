@@ -26,6 +26,8 @@ from pmap.io import isoxml, rasters, tables, vectors
 from pmap.io.manifest import file_record, write_manifest
 from pmap.io.publish import OutputTransaction, open_transaction
 from pmap.prescribe.prescription import NOT_SAMPLED
+from pmap.soil.environment import PSR_CLASS_LABELS
+from pmap.soil.lime import class_labels as lime_class_labels
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
 
 if TYPE_CHECKING:
@@ -50,8 +52,10 @@ class LayerInfo:
 _ZONE_COLOURS = {1: "#D55E00", 2: "#E69F00", 3: "#009E73", 4: "#56B4E9", 5: "#0072B2"}
 _THREE_ZONE_COLOURS = {1: "#D55E00", 2: "#009E73", 3: "#0072B2"}
 _NOT_SAMPLED_COLOUR = "#BBBBBB"
-_MECHANISM_COLOURS = {1: "#D55E00", 2: "#0072B2", 3: "#CC79A7"}
+_MECHANISM_COLOURS = {1: "#D55E00", 2: "#0072B2", 3: "#CC79A7", 4: "#009E73"}
 _RISK_COLOURS = {1: "#F0E442", 2: "#E69F00", 3: "#882255"}
+_LIME_COLOURS = {1: "#DDDDDD", 2: "#56B4E9", 3: "#0072B2", 4: "#332288", 5: "#000000",
+                 6: "#000000", 7: "#000000"}
 
 #: Every layer pmap can write: name -> LayerInfo.  Kriged properties get a ``_variance``.
 LAYERS: dict[str, LayerInfo] = {
@@ -62,10 +66,20 @@ LAYERS: dict[str, LayerInfo] = {
     "clay": LayerInfo("Clay (kriged)", "%", "cividis"),
     "base_saturation": LayerInfo("Base saturation (kriged)", "%", "cividis"),
     "om": LayerInfo("Organic matter (kriged)", "%", "cividis"),
+    "ca": LayerInfo("Ca, Mehlich-3 (kriged)", "mg/kg", "cividis"),
+    "fe": LayerInfo("Fe, Mehlich-3 (kriged)", "mg/kg", "cividis"),
+    "al": LayerInfo("Al, Mehlich-3 (kriged)", "mg/kg", "cividis"),
+    "buffer_ph": LayerInfo("Buffer pH (kriged)", "pH units", "cividis"),
     "available_p": LayerInfo("Plant-available P (model)", "mg/kg"),
     "fe_al_p": LayerInfo("Fe/Al-bound P (model)", "mg/kg", "magma"),
     "ca_p": LayerInfo("Ca-bound P (model)", "mg/kg", "magma"),
     "occluded_p": LayerInfo("Occluded P (model)", "mg/kg", "magma"),
+    "organic_p": LayerInfo("Organic P (model)", "mg/kg", "magma"),
+    "available_p_sd": LayerInfo("Standard deviation of available P (model, from kriging)",
+                                "mg/kg", "magma"),
+    "available_p_deficiency_probability": LayerInfo(
+        "Probability available P is below the critical level (model)", "probability 0-1",
+        "cividis"),
     "stp_equivalent": LayerInfo("Soil-test P equivalent (MODEL ESTIMATE)", "mg/kg"),
     "fixation_risk": LayerInfo("Fixation risk of applied P", "index 0-1", "magma"),
     "fixation_mechanism": LayerInfo(
@@ -75,7 +89,19 @@ LAYERS: dict[str, LayerInfo] = {
     "stp_deficiency_probability": LayerInfo(
         "Probability soil-test P is below the critical level", "probability 0-1", "cividis"),
     "fixation_high_probability": LayerInfo(
-        "Probability of high fixation risk (simulations)", "probability 0-1", "cividis"),
+        "Probability of high fixation risk (model)", "probability 0-1",
+        "cividis"),
+    "low_ph_flag": LayerInfo("P rates on ground below the pH floor", "class",
+                             classes={0: "pH at or above the floor", 1: "pH below the floor"},
+                             colours={0: "#DDDDDD", 1: "#882255"}),
+    "lime_rate": LayerInfo("Lime rate to the target pH", "t/ha", "cividis"),
+    "lime_zones": LayerInfo("Lime-rate classes", "class"),
+    "liming_available_p_gain": LayerInfo("Available P gained if pH reached the target (model)",
+                                         "mg/kg", "viridis"),
+    "p_saturation_ratio": LayerInfo("P saturation ratio, Mehlich-3 (molar)", "ratio",
+                                    "magma"),
+    "p_saturation_class": LayerInfo("P saturation class", "class", classes=PSR_CLASS_LABELS,
+                                    colours=_RISK_COLOURS),
     "zones": LayerInfo("Soil-test P zones", "class"),
     "p2o5_rate": LayerInfo("P2O5 rate per cell", "kg P2O5/ha", "viridis"),
     "p2o5_zone_rate": LayerInfo("P2O5 rate by zone (prescription)", "kg P2O5/ha", "viridis"),
@@ -282,9 +308,11 @@ def _provenance(result: FieldResult, name: str) -> dict[str, str]:
         tags["METHOD"] = ("lognormal ordinary kriging" if interp.log else "ordinary kriging")
         tags["VARIOGRAM"] = json.dumps(_json_safe(interp.model.as_dict()))
         tags["N_SAMPLES"] = str(interp.cv.n)
-    elif name in ("available_p", "fe_al_p", "ca_p", "occluded_p", "fixation_risk",
+    elif name in ("available_p", "fe_al_p", "ca_p", "occluded_p", "organic_p", "available_p_sd",
+                  "available_p_deficiency_probability", "fixation_risk",
                   "fixation_mechanism", "fixation_class"):
-        tags["METHOD"] = "pmap soil model v1 on kriged inputs (docs/soil-model.md)"
+        tags["METHOD"] = (f"pmap soil model v2 on kriged inputs, fixation model "
+                          f"{result.config.fixation.model} (docs/soil-model.md)")
     elif name in _PRESCRIPTION_LAYERS:
         tags["METHOD"] = f"pmap rates v2; soil-test P: {result.stp_source['description']}"
         tags["BASIS"] = result.prescription["basis"]
@@ -327,6 +355,12 @@ def write_outputs(
         basis_note = _basis_note(result)
         for name, array in result.layers.items():
             info = layer_info(name, tuple(result.prescription["zone_labels"]))
+            if name == "lime_zones":
+                labels = lime_class_labels(result.config.lime.zone_breaks_t_ha)
+                info = dataclasses.replace(
+                    info, classes={i + 1: t for i, t in enumerate(labels)},
+                    colours={i + 1: _LIME_COLOURS.get(i + 1, "#000000")
+                             for i in range(len(labels))})
             colormap = ({k: _hex_to_rgba(v) for k, v in info.colours.items()}
                         if info.colours else None)
             rasters.write_cog(
@@ -340,6 +374,7 @@ def write_outputs(
                 shown, classes = _discrete_rates(array, info.unit)
                 colours = None
             limits = (0.0, 1.0) if name in ("stp_deficiency_probability",
+                                            "available_p_deficiency_probability",
                                             "fixation_high_probability",
                                             "fixation_risk") else (None, None)
             maps.plot_layer(
@@ -366,6 +401,14 @@ def write_outputs(
                 table=_candidate_table(interp),
             )
             outputs[f"maps/variogram_{name}.png"] = f"empirical and fitted variogram of {name}"
+        if result.calibration is not None:
+            from pmap.report.calibration_plot import plot_calibration
+
+            plot_calibration(result.calibration, tmp / "maps" / "calibration.png",
+                             method_label=str(inputs.samples.stp_method or "lab soil-test P"),
+                             title=f"{result.config.field.name}: soil model calibrated to the "
+                             "lab's soil-test P")
+            outputs["maps/calibration.png"] = "soil model against the lab's soil-test P"
 
         stem = tables.output_stem(result.config.field.name, result.config.field.farm,
                                   result.config.field.sampling_date)
@@ -503,7 +546,7 @@ def _summary(result, inputs, sources, copied, outputs):
     }
     available: dict[str, Any] = {}
     if "available_p" in result.layers:
-        for name in ("available_p", "fe_al_p", "ca_p", "occluded_p"):
+        for name in ("available_p", "fe_al_p", "ca_p", "occluded_p", "organic_p"):
             available[f"mean_{name}_mg_kg"] = float(np.nanmean(result.layers[name]))
     else:
         available["note"] = ("the samples hold no total P: available P and the P pools are not "
@@ -531,7 +574,7 @@ def _summary(result, inputs, sources, copied, outputs):
             "cells_inside": grid.n_inside, "area_ha": round(grid.n_inside * grid.cell_area_ha, 3),
         },
         "properties": props,
-        "soil_model": available,
+        "soil_model": {**available, **_json_safe(result.soil)},
         "fixation": fixation,
         "soil_test_p_driving_rates": result.stp_source,
         "rate_rule": dataclasses.asdict(result.rule),

@@ -13,6 +13,7 @@ from __future__ import annotations
 import contextlib
 import dataclasses
 import logging
+import re
 import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -35,9 +36,9 @@ from pmap.prescribe.clustering import cluster_zones, zone_means, zone_rates
 from pmap.prescribe.interpretation import InterpretationTable
 from pmap.prescribe.patches import clean_zones, min_cells_for_area, min_width_cells
 from pmap.prescribe.rates import RateRule, resolve_interpretation
-from pmap.soil.availability import SoilPools, partition_total_p
+from pmap.soil.availability import SoilPools
 from pmap.soil.conversions import convert_soil_test
-from pmap.soil.fixation import FixationRisk, fixation_risk
+from pmap.soil.model import SoilInputs, recent_p_mg_kg, soil_model
 
 __all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "run_each_feature",
            "krige_properties",
@@ -48,7 +49,8 @@ log = logging.getLogger(__name__)
 
 #: Sample properties pmap kriges when the samples hold them, in this order.
 KRIGED_PROPERTIES: tuple[str, ...] = (
-    "ph", "total_p", "stp", "caco3", "clay", "base_saturation", "om",
+    "ph", "total_p", "stp", "caco3", "clay", "base_saturation", "om", "ca", "fe", "al",
+    "buffer_ph",
 )
 #: Properties whose map the job cannot do without when present: if one cannot be mapped (too
 #: few samples, no fittable variogram, bad values) the run stops with a message naming it.
@@ -103,6 +105,8 @@ class FieldResult:
     interpretation: InterpretationTable
     prescription: dict[str, Any]
     summary: dict[str, Any] = field(repr=False)
+    soil: dict[str, Any] = field(default_factory=dict)
+    calibration: Any = None
     outputs: dict[str, str] = field(default_factory=dict, repr=False)
     warnings: list[str] = field(default_factory=list)
 
@@ -389,28 +393,29 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     kriged = krige_properties(inputs.samples, grid.inside_coords(), config, grid=grid)
     estimates = _physical_estimates(kriged)
 
-    # Soil model on the kriged layers.
-    soil_inputs = {"caco3_pct": estimates.get("caco3"), "clay_pct": estimates.get("clay"),
-                   "base_saturation_pct": estimates.get("base_saturation")}
+    # Soil model on the kriged layers, calibrated to the lab's pairs where they exist.
     ph = estimates["ph"]
-    pools: SoilPools | None = None
-    if "total_p" in estimates:
-        pools = partition_total_p(ph, estimates["total_p"], config.soil, **soil_inputs)
-    risk: FixationRisk = fixation_risk(
-        ph, config.fixation, config.soil, **soil_inputs,
-        labile_p_mg_kg=pools.available if pools is not None else None,
-    )
+    partition, calibration, calibration_record = calibrate_in_run(inputs.samples, config, rule)
+    soil_inputs = _soil_inputs(estimates, grid, config)
+    model = soil_model(ph, estimates.get("total_p"), soil_inputs, partition, config.fixation)
+    pools, risk = model.pools, model.risk
+    for note in model.notes:
+        warnings.warn(note, PmapWarning, stacklevel=2)
 
     # The soil-test P that drives zones and rates, its uncertainty, and the rule's method.
-    stp, method, stp_source = _rate_driver(estimates, pools, inputs.samples.stp_method, config)
+    stp, method, stp_source = _rate_driver(estimates, pools, inputs.samples.stp_method, config,
+                                           calibration_record)
     basis = rx.BASIS_MEASURED if stp_source["source"] == "measured" else rx.BASIS_MODEL
     realisations = _simulations(inputs, kriged, grid, config)
     if "ph" in realisations:
+        fixed_inputs = dataclasses.replace(
+            soil_inputs, lab_stp_mg_kg=(soil_inputs.lab_stp_mg_kg if pools is None
+                                        or soil_inputs.lab_stp_mg_kg is not None
+                                        else pools.available))
         high = np.zeros(ph.shape)
         for ph_r in realisations["ph"]:
-            high += fixation_risk(ph_r, config.fixation, config.soil, **soil_inputs,
-                                  labile_p_mg_kg=pools.available if pools is not None else None,
-                                  ).risk_class == 3
+            high += soil_model(ph_r, None, fixed_inputs, partition,
+                               config.fixation).risk.risk_class == 3
         realisations["fixation_high"] = high / len(realisations["ph"])
     deficiency, driver, risk_note = _deficiency(kriged.get("stp"), stp, method, rule,
                                                 realisations.get("stp"))
@@ -499,7 +504,26 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     )
     if clusters is not None and config.clusters.rates_kg_ha:
         patches = _table_rates(patches, clusters, config, rule)
+
+    # The kriging uncertainty carried through the soil model.
+    model_layers, uncertainty = model_uncertainty(
+        kriged, soil_inputs, partition, config, rule,
+        calibrated_method=(calibration_record.get("method")
+                           if calibration_record["status"] == "calibrated" else None),
+        realisations=realisations)
+
+    # Lime, the pH-correction payoff and environmental P, beside the P prescription.
+    extra_layers, soil_record = _lime_and_environment(
+        ph, estimates, pools, soil_inputs, partition, config, grid, patches, labels, rule,
+        stp_method=method)
+    patches = soil_record.pop("patches")
     polygons, patches, labels = _polygons_for(patches, labels, inputs.boundary, grid, config)
+    soil_record["calibration"] = calibration_record
+    soil_record["uncertainty"] = uncertainty
+    soil_record["fixation_model"] = config.fixation.model
+    soil_record["input_notes"] = list(model.notes)
+    soil_record["ph_kind"] = "converted from salt pH" if any(
+        "converted to water pH" in n for n in inputs.samples.notes) else "water"
 
     layers: dict[str, np.ndarray] = {}
     for name, interp in kriged.items():
@@ -510,6 +534,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
         layers["fe_al_p"] = grid.fill(pools.fe_al)
         layers["ca_p"] = grid.fill(pools.ca)
         layers["occluded_p"] = grid.fill(pools.occluded)
+        layers["organic_p"] = grid.fill(pools.organic)
     if "stp" not in kriged:
         layers["stp_equivalent"] = grid.fill(stp)
     if deficiency is not None:
@@ -519,6 +544,8 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     layers["fixation_class"] = grid.fill(risk.risk_class, outside=0).astype(np.uint8)
     if "fixation_high" in realisations:
         layers["fixation_high_probability"] = grid.fill(realisations["fixation_high"])
+    layers.update(extra_layers)
+    layers.update({name: grid.fill(values) for name, values in model_layers.items()})
     zone_class = np.array([0] + [p.class_id for p in patches], dtype=np.uint8)
     layers["zones"] = zone_class[labels]
     layers["p2o5_rate"] = grid.fill(rate_cells)
@@ -555,6 +582,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
         class_table=rx.class_table(patches), patches=patches, polygons=polygons,
         patch_labels=labels, totals=totals, stp_source=stp_source, rule=rule,
         interpretation=table, prescription=prescription, summary={},
+        soil=soil_record, calibration=calibration,
     )
 
 
@@ -579,9 +607,20 @@ def _table_rates(patches: list[rx.Patch], clusters: Any, config: FieldConfig,
 MAX_SIMULATED_VALUES = 50_000_000
 
 
+def property_seed(seed: int, stream: int) -> int:
+    """The seed of one property's simulations: stream 0 keeps ``seed``; others get their own.
+
+    Properties simulated with one seed would share the random path and the noise, so their
+    realisations would be correlated although the kriging treats them as independent.
+    """
+    if stream == 0:
+        return int(seed)
+    return int(np.random.SeedSequence([int(seed), int(stream)]).generate_state(1)[0])
+
+
 def _simulations(inputs: FieldInputs, kriged: dict[str, Interpolation], grid: GridSpec,
                  config: FieldConfig) -> dict[str, Any]:
-    """Conditional simulations of pH and soil-test P when kriging.probability = 'simulation'.
+    """Conditional simulations of pH, soil-test P and total P when kriging.probability = 'simulation'.
 
     Each property is simulated with the family its kriging chose, refitted to the normal
     scores of its samples; the realisations are in the property's units.
@@ -600,7 +639,7 @@ def _simulations(inputs: FieldInputs, kriged: dict[str, Interpolation], grid: Gr
             "'kriging'")
     out: dict[str, Any] = {}
     notes = []
-    for name in ("stp", "ph"):
+    for stream, name in enumerate(("stp", "ph", "total_p")):
         interp = kriged.get(name)
         if interp is None or interp.kind != "kriged":
             continue
@@ -608,13 +647,13 @@ def _simulations(inputs: FieldInputs, kriged: dict[str, Interpolation], grid: Gr
         ok = np.isfinite(values)
         real, model = simulate_property(
             inputs.samples.coords[ok], values[ok], targets, interp.model.kind,
-            n_realisations=settings.realisations, seed=settings.seed,
+            n_realisations=settings.realisations, seed=property_seed(settings.seed, stream),
             neighbours=settings.neighbours, n_bins=settings.n_bins,
             cutoff_fraction=settings.cutoff_fraction,
             max_variogram_samples=settings.variogram_max_samples)
         out[name] = real
         notes.append(f"{name}: {settings.realisations} sequential Gaussian simulations (seed "
-                     f"{settings.seed}, {settings.neighbours} neighbours, normal-score "
+                     f"{property_seed(settings.seed, stream)}, {settings.neighbours} neighbours, normal-score "
                      f"{model.kind} variogram, range {model.range:.0f} m)")
     out["note"] = "; ".join(notes)
     return out
@@ -703,7 +742,48 @@ def _polygons_for(
 _LIMITS: dict[str, tuple[float, float]] = {
     "ph": (0.0, 14.0), "total_p": (0.0, np.inf), "stp": (0.0, np.inf), "caco3": (0.0, 100.0),
     "clay": (0.0, 100.0), "base_saturation": (0.0, 100.0), "om": (0.0, 100.0),
+    "ca": (0.0, np.inf), "fe": (0.0, np.inf), "al": (0.0, np.inf), "buffer_ph": (0.0, 14.0),
 }
+
+
+def layer_thickness_cm(depth: str) -> float:
+    """Thickness (cm) of a sampling depth written ``"0-15"``, ``"5-20 cm"`` or ``"15"``.
+
+    Raises
+    ------
+    ConfigError
+        If the text is not one or two numbers with the second larger.
+    """
+    numbers = [float(x) for x in re.findall(r"\d+(?:\.\d+)?", depth)]
+    if len(numbers) == 1 and numbers[0] > 0:
+        return numbers[0]
+    if len(numbers) == 2 and numbers[1] > numbers[0]:
+        return numbers[1] - numbers[0]
+    raise ConfigError(f"field.sampling_depth_cm must read like '0-15' (cm), got {depth!r}")
+
+
+def _soil_inputs(estimates: dict[str, np.ndarray], grid: GridSpec,
+                 config: FieldConfig) -> SoilInputs:
+    """The soil model's per-cell inputs: kriged layers, soil-map and as-applied rasters."""
+    from pmap.io.rasters import read_onto_grid
+
+    soil = config.soil
+    weathering = None
+    if soil.weathering_raster:
+        weathering = read_onto_grid(soil.weathering_raster, grid, resampling="nearest",
+                                    min_coverage=0.0)[grid.mask]
+    recent: np.ndarray | float = soil.recent_p2o5_kg_ha
+    if soil.recent_p2o5_raster:
+        applied = read_onto_grid(soil.recent_p2o5_raster, grid, resampling="nearest",
+                                 min_coverage=0.0)[grid.mask]
+        recent = np.where(np.isfinite(applied), applied, soil.recent_p2o5_kg_ha)
+    depth = (layer_thickness_cm(config.field.sampling_depth_cm)
+             if np.any(np.asarray(recent) > 0) else 15.0)
+    return SoilInputs(
+        caco3_pct=estimates.get("caco3"), clay_pct=estimates.get("clay"),
+        om_pct=estimates.get("om"), base_saturation_pct=estimates.get("base_saturation"),
+        ca_mg_kg=estimates.get("ca"), lab_stp_mg_kg=estimates.get("stp"),
+        weathering_code=weathering, recent_p2o5_kg_ha=recent, depth_cm=depth)
 
 
 def _physical_estimates(kriged: dict[str, Interpolation]) -> dict[str, np.ndarray]:
@@ -713,9 +793,13 @@ def _physical_estimates(kriged: dict[str, Interpolation]) -> dict[str, np.ndarra
 
 def _rate_driver(
     estimates: dict[str, np.ndarray], pools: SoilPools | None, lab_method: str | None,
-    config: FieldConfig,
+    config: FieldConfig, calibration_record: dict[str, Any],
 ) -> tuple[np.ndarray, str, dict[str, Any]]:
-    """The soil-test P per cell that drives zones and rates, its method and its provenance."""
+    """The soil-test P per cell that drives zones and rates, its method and its provenance.
+
+    Rates from a model estimate need a calibrated model (a [calibration] file written by
+    ``pmap calibrate``) or the user's consent (``rates.allow_uncalibrated_model``).
+    """
     if "stp" in estimates:
         method = lab_method or config.rates.soil_test_method or "mehlich3_icp"
         return estimates["stp"], method, {
@@ -724,13 +808,275 @@ def _rate_driver(
         }
     if pools is None:  # guarded by require_phosphorus: total P or soil-test P is present
         raise InputError("no soil-test P and no total P: nothing to base rates on")
+    calibrated = calibration_record["status"] == "calibrated"
+    if not calibrated and not config.rates.allow_uncalibrated_model:
+        raise ConfigError(
+            "the samples hold no lab soil-test P, so zones and rates would come from the soil "
+            "model's estimate of available P, and the model's parameters are its defaults, not "
+            "calibrated to this region (on the demo field the defaults move the zone class on "
+            "most of the field). Calibrate once per region with `pmap calibrate SAMPLES --out "
+            "PARAMS.toml` on samples with total P and a lab soil-test P and pass --config "
+            "PARAMS.toml, add a soil-test P column, or accept the uncalibrated estimate with "
+            "rates.allow_uncalibrated_model = true")
     equivalent = config.soil_test_equivalent
+    basis = ("calibrated parameters" + (f" ({calibration_record.get('source')})"
+                                        if calibration_record.get("source") else "")
+             if calibrated else "DEFAULT (uncalibrated) parameters, accepted by "
+             "rates.allow_uncalibrated_model")
     description = (
-        f"MODEL ESTIMATE: the samples hold no soil-test P; the model's available P was "
-        f"converted to a {equivalent.method} equivalent (soil_test_equivalent: intercept "
+        f"MODEL ESTIMATE: the samples hold no soil-test P; the model's available P ({basis}) "
+        f"was converted to a {equivalent.method} equivalent (soil_test_equivalent: intercept "
         f"{equivalent.intercept}, slope {equivalent.slope}); confirm with a lab soil test"
     )
     warnings.warn(description, PmapWarning, stacklevel=3)
     return equivalent.to_soil_test(pools.available), equivalent.method, {
         "source": "model estimate", "method": equivalent.method, "description": description,
+        "model_parameters": "calibrated" if calibrated else "default",
     }
+
+
+def model_uncertainty(
+    kriged: dict[str, Interpolation], soil_inputs: SoilInputs, partition: Any,
+    config: FieldConfig, rule: RateRule, *, calibrated_method: str | None,
+    realisations: dict[str, Any] | None = None,
+) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """Per-cell standard deviation of available P and its probability of deficiency.
+
+    pH and total P are drawn jointly per cell (independently of each other) from their
+    kriging distributions (normal, or lognormal where log-kriged; seeded by kriging.seed,
+    kriging.realisations draws), or taken from the conditional simulations when
+    kriging.probability = 'simulation'; each draw goes through the soil model.  The critical
+    level is the rule's, in the units of the model's available P: the calibration's lab
+    method when calibrated, else the soil-test equivalent's method.
+    """
+    tp, ph_interp = kriged.get("total_p"), kriged.get("ph")
+    if tp is None or ph_interp is None:
+        return {}, {"note": "not computed: needs kriged pH and total P"}
+    n = config.kriging.realisations
+    equivalent = config.soil_test_equivalent
+    basis_method = calibrated_method or equivalent.method
+    critical = rule.critical_ppm
+    if rule.soil_test_method != basis_method:
+        critical = float(convert_soil_test(np.array([critical]), rule.soil_test_method,
+                                           basis_method)[0])
+    sims = realisations or {}
+    if "ph" in sims and "total_p" in sims:
+        draws = zip(sims["ph"], sims["total_p"], strict=True)
+        source = f"{len(sims['ph'])} conditional simulations of pH and total P"
+        n = len(sims["ph"])
+    else:
+        rng = np.random.default_rng(config.kriging.seed)
+
+        def one(interp: Interpolation) -> np.ndarray:
+            mean, variance = interp.kriged_moments()
+            z = mean + np.sqrt(np.maximum(variance, 0.0)) * rng.standard_normal(mean.shape)
+            lo, hi = _LIMITS.get(interp.name, (-np.inf, np.inf))
+            return np.clip(np.exp(z) if interp.log else z, lo, hi)
+
+        draws = ((one(ph_interp), one(tp)) for _ in range(n))
+        source = (f"{n} draws per cell from the kriging distributions of pH and total P "
+                  f"(seed {config.kriging.seed}; pH and total P drawn independently)")
+    total = total_sq = below = high = None
+    for ph_r, tp_r in draws:
+        drawn = soil_model(ph_r, tp_r, soil_inputs, partition, config.fixation)
+        available = drawn.pools.available
+        as_test = available if calibrated_method else equivalent.to_soil_test(available)
+        if total is None:
+            total, total_sq, below, high = (np.zeros(available.shape) for _ in range(4))
+        total += available
+        total_sq += available**2
+        below += as_test < critical
+        high += drawn.risk.risk_class == 3
+    mean = total / n
+    sd = np.sqrt(np.maximum(total_sq / n - mean**2, 0.0) * n / max(n - 1, 1))
+    layers = {"available_p_sd": sd, "available_p_deficiency_probability": below / n}
+    if "ph" not in sims:  # the simulations give their own figure otherwise
+        layers["fixation_high_probability"] = high / n
+    return (layers,
+            {"source": source, "critical_ppm": critical, "method": basis_method,
+             "mean_available_p_sd_mg_kg": float(np.nanmean(sd))})
+
+
+def _lime_and_environment(
+    ph: np.ndarray, estimates: dict[str, np.ndarray], pools: SoilPools | None,
+    soil_inputs: SoilInputs, partition: Any, config: FieldConfig, grid: GridSpec,
+    patches: list[rx.Patch], labels: np.ndarray, rule: RateRule, *, stp_method: str,
+) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """Lime rates and classes, the P gained by liming, the low-pH flag and the P saturation ratio.
+
+    Returns the extra layers (2-D) and a record for the summary whose ``patches`` entry is
+    the rate polygons after the optional P-saturation cap.
+    """
+    from pmap.soil import environment, lime
+
+    layers: dict[str, np.ndarray] = {}
+    record: dict[str, Any] = {}
+    cell_ha = grid.cell_area_ha
+    lp = config.lime
+    low_ph = lime.p_rate_ph_flag(ph, lp)
+    layers["low_ph_flag"] = grid.fill(low_ph.astype(np.uint8), outside=0).astype(np.uint8)
+    record["low_ph"] = {"ph_floor": lp.ph_floor_for_p_rates,
+                        "area_below_ha": round(float(low_ph.sum()) * cell_ha, 3)}
+    if low_ph.any():
+        warnings.warn(
+            f"{low_ph.sum() * cell_ha:.2f} ha of the field have pH below "
+            f"{lp.ph_floor_for_p_rates:g}: P applied there is largely fixed by Fe and Al; "
+            "correct the pH (lime) before or with the P (the low_ph_flag layer shows where)",
+            PmapWarning, stacklevel=3)
+    if lp.method != "off":
+        buffer = estimates.get("buffer_ph")
+        need = lime.lime_requirement_t_ha(ph, buffer, lp)
+        rate = lime.lime_rate_t_ha(need, lp)
+        zones = lime.lime_zones(rate, np.isfinite(rate), lp)
+        cover = lime.lime_coverage(ph, buffer, lp)
+        layers["lime_rate"] = grid.fill(rate)
+        layers["lime_zones"] = grid.fill(zones.codes, outside=0).astype(np.uint8)
+        record["lime"] = {
+            "method": lp.method, "target_ph": lp.target_ph,
+            "area_below_target_ha": round(float(cover.below_target) * cell_ha, 3),
+            "area_without_buffer_ph_ha": round(float(cover.below_target_without_buffer)
+                                               * cell_ha, 3),
+            "total_t": round(float(np.nansum(rate)) * cell_ha, 2),
+            "classes": [{"class": c.class_code, "label": c.label, "rate_t_ha": c.rate_t_ha,
+                         "rate_t_acre": c.rate_t_acre,
+                         "area_ha": round(c.cells * cell_ha, 3)} for c in zones.table],
+        }
+        if cover.below_target_without_buffer:
+            record["lime"]["note"] = (
+                "no buffer pH in the samples: the lime requirement is not computed where pH "
+                "is below the target (no guess is made); add a buffer pH column")
+        if pools is not None:
+            def available_at(target_ph: np.ndarray) -> np.ndarray:
+                return soil_model(target_ph, estimates["total_p"], soil_inputs, partition,
+                                  config.fixation).pools.available
+            gain = lime.ph_correction_payoff(ph, lp.target_ph, available_at)
+            layers["liming_available_p_gain"] = grid.fill(gain)
+            record["lime"]["mean_available_p_gain_mg_kg"] = float(np.nanmean(gain))
+    ep = config.environment
+    if all(k in estimates for k in ("fe", "al", "stp")) and stp_method.startswith("mehlich3"):
+        psr = environment.phosphorus_saturation_ratio(estimates["stp"], estimates["fe"],
+                                                      estimates["al"])
+        psr_class = environment.psr_class(psr, ep)
+        layers["p_saturation_ratio"] = grid.fill(psr)
+        layers["p_saturation_class"] = grid.fill(psr_class, outside=0).astype(np.uint8)
+        record["p_saturation"] = {
+            "watch_psr": ep.watch_psr, "high_psr": ep.high_psr,
+            "area_ha": {label: round(float((psr_class == code).sum()) * cell_ha, 3)
+                        for code, label in environment.PSR_CLASS_LABELS.items()},
+            "rates_capped": ep.cap_rates,
+        }
+        if ep.cap_rates:
+            psr2d = grid.fill(psr)
+            capped = []
+            for i, p in enumerate(patches):
+                mean_psr = float(np.nanmean(psr2d[labels == p.zone_id])) if p.n_cells else np.nan
+                if np.isfinite(mean_psr) and mean_psr >= ep.high_psr and \
+                        p.p2o5_kg_ha > ep.capped_rate_kg_ha:
+                    product, p2o5, nitrogen = (float(np.ravel(v)[0]) for v in
+                                               rate_rules.product_rates(
+                                                   np.array([ep.capped_rate_kg_ha]), rule))
+                    patches[i] = dataclasses.replace(p, p2o5_kg_ha=p2o5, product_kg_ha=product,
+                                                     n_kg_ha=nitrogen)
+                    capped.append(p.zone_id)
+            record["p_saturation"]["capped_zone_ids"] = capped
+            if capped:
+                warnings.warn(
+                    f"{len(capped)} rate polygons with mean P saturation ratio >= "
+                    f"{ep.high_psr:g} were capped at {ep.capped_rate_kg_ha:g} kg P2O5/ha "
+                    "(environment.cap_rates)", PmapWarning, stacklevel=3)
+    elif ep.cap_rates:
+        raise ConfigError("environment.cap_rates needs Mehlich-3 P, Fe and Al in the samples "
+                          "(the P saturation ratio is defined for Mehlich-3 only)")
+    record["patches"] = list(patches)
+    return layers, record
+
+
+def _soil_inputs_at_samples(samples: SampleTable, config: FieldConfig) -> dict[str, Any]:
+    """The soil map's weathering class and the recent P additions at each sample.
+
+    The same rasters and field-wide values as :func:`_soil_inputs` gives the map, read at
+    the sample points, so that calibration sees the model the run applies.  The labile
+    share of fresh P is the EPIC PSP of new P at the starting parameters.
+    """
+    from pmap.io.rasters import sample_at_points
+
+    soil = config.soil
+    out: dict[str, Any] = {}
+    if soil.weathering_raster:
+        out["weathering_code"] = sample_at_points(soil.weathering_raster, samples.coords,
+                                                  samples.crs)
+    recent = np.full(len(samples.ids), float(soil.recent_p2o5_kg_ha))
+    if soil.recent_p2o5_raster:
+        applied = sample_at_points(soil.recent_p2o5_raster, samples.coords, samples.crs)
+        recent = np.where(np.isfinite(applied), applied, soil.recent_p2o5_kg_ha)
+    if np.any(recent > 0):
+        values = samples.values
+        inputs = SoilInputs(
+            caco3_pct=values.get("caco3"), clay_pct=values.get("clay"), om_pct=values.get("om"),
+            base_saturation_pct=values.get("base_saturation"), ca_mg_kg=values.get("ca"),
+            lab_stp_mg_kg=values.get("stp"), weathering_code=out.get("weathering_code"),
+            recent_p2o5_kg_ha=recent,
+            depth_cm=layer_thickness_cm(config.field.sampling_depth_cm))
+        model = soil_model(values["ph"], values.get("total_p"), inputs, soil, config.fixation)
+        out["recent_p_mg_kg"] = recent_p_mg_kg(recent, inputs.depth_cm, soil.bulk_density_g_cm3)
+        out["fresh_labile_fraction"] = model.fresh_labile_fraction
+    return out
+
+
+def calibrate_in_run(
+    samples: SampleTable, config: FieldConfig, rule: RateRule | None = None,
+) -> tuple[Any, Any, dict[str, Any]]:
+    """The soil model's parameters for this run, calibrated to the samples' own lab pairs.
+
+    When ``calibration.auto`` is on and the samples hold pH, total P and a lab soil-test P
+    together, the partition is calibrated to them (starting from ``[soil]``); a refusal (too
+    few pairs, nothing identifiable) keeps ``[soil]`` and says why.
+
+    Returns
+    -------
+    partition : PartitionParams
+    calibration : pmap.soil.calibration.Calibration or None
+    record : dict
+        ``status`` ("calibrated", "default" or "refused"), where the parameters come from,
+        and the calibration's figures.
+    """
+    from pmap.soil.calibration import calibrate_partition
+
+    settings = config.calibration
+    record: dict[str, Any] = {"status": settings.status, "method": settings.method}
+    if settings.status == "calibrated":
+        record["source"] = f"config file, {settings.record.get('samples', 'pmap calibrate')}"
+        record["record"] = dict(settings.record)
+    values = samples.values
+    if not (settings.auto and "stp" in values and "total_p" in values):
+        record.setdefault("note", "no in-run calibration: the samples do not hold total P and a "
+                          "lab soil-test P together" if settings.auto else
+                          "in-run calibration switched off (calibration.auto = false)")
+        return config.soil, None, record
+    try:
+        at_samples = _soil_inputs_at_samples(samples, config)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)
+            cal = calibrate_partition(
+                values["ph"], values["total_p"], values["stp"], config.soil,
+                caco3_pct=values.get("caco3"), clay_pct=values.get("clay"),
+                om_pct=values.get("om"), ca_mg_kg=values.get("ca"), **at_samples,
+                k_folds=settings.k_folds, seed=settings.seed, min_pairs=settings.min_pairs,
+                candidates=settings.fit)
+    except PmapError as exc:
+        message = (f"{samples.source}: the soil model was not calibrated to the lab's pairs "
+                   f"({exc}); it runs with the [soil] parameters")
+        warnings.warn(message, PmapWarning, stacklevel=3)
+        return config.soil, None, {**record, "status": "refused", "reason": str(exc)}
+    record = {**cal.as_dict(), "status": "calibrated", "fit": cal.method,
+              "method": samples.stp_method,
+              "source": f"this run, {cal.n_pairs} lab pairs of {Path(samples.source).name}"}
+    if rule is not None:
+        critical = rule.critical_ppm
+        record["samples_below_critical"] = {
+            "critical_ppm": critical, "lab": int((cal.observed < critical).sum()),
+            "default_model": int((cal.default_predictions < critical).sum()),
+            "calibrated_model": int((cal.predictions < critical).sum())}
+    log.info("soil model calibrated to %d pairs: CV RMSE %.3g mg/kg (default %.3g)",
+             cal.n_pairs, cal.cv_rmse, cal.default_rmse)
+    return cal.params, cal, record

@@ -90,8 +90,9 @@ _LOG_CHOICES = ("auto", "always", "never")
 _SKEW_LIMIT = 1.0
 # Fewest samples for which a geometric anisotropy is fitted (four directions need pairs).
 _MIN_ANISOTROPY_SAMPLES = 50
-#: Properties that are logarithms already (pH = -log10 of the H+ activity): never log-kriged.
-LOGARITHMIC: tuple[str, ...] = ("ph",)
+#: Properties that are logarithms already (pH = -log10 of the H+ activity, and a buffer pH):
+#: never log-kriged.
+LOGARITHMIC: tuple[str, ...] = ("ph", "buffer_ph")
 
 
 @dataclass(frozen=True)
@@ -248,6 +249,16 @@ class KrigingSettings:
             "source": "from memory, unverified",
         },
     )
+    lab_error_sd_buffer_ph: float = field(
+        default=0.03,
+        metadata={
+            "unit": "pH units",
+            "doc": "standard deviation of the lab's buffer-pH reading; its square is the least "
+            "nugget a buffer-pH variogram may take (a buffer pH spans about 1 pH unit, so the "
+            "soil pH's error would swamp it)",
+            "source": "from memory, unverified",
+        },
+    )
     lab_error_cv: float = field(
         default=0.05,
         metadata={
@@ -336,7 +347,7 @@ class KrigingSettings:
                 f"kriging.log_transform must be one of {list(_LOG_CHOICES)}, got {self.log_transform!r}"
             )
         check_whole("kriging.min_samples", self.min_samples, ge=5)
-        for key in ("lab_error_sd_ph", "lab_error_cv"):
+        for key in ("lab_error_sd_ph", "lab_error_sd_buffer_ph", "lab_error_cv"):
             check_number(f"kriging.{key}", getattr(self, key), ge=0, lt=1)
         check_whole("kriging.chunk_size", self.chunk_size, ge=1)
         check_number("kriging.outlier_z", self.outlier_z, gt=0, finite=True)
@@ -357,7 +368,8 @@ class KrigingSettings:
 def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSettings) -> float:
     """Least nugget allowed by the lab's precision, in squared units of the kriged variable.
 
-    pH uses the absolute error ``lab_error_sd_ph`` (pH units), the other properties a
+    pH and buffer pH use an absolute error (``lab_error_sd_ph``, ``lab_error_sd_buffer_ph``;
+    pH units), the others a
     relative error ``lab_error_cv`` of the sample mean.  On the property's own scale the
     floor is the error variance, ``sd^2`` or ``(cv x mean)^2``; when the logarithm is kriged
     it is the variance of the log of a value with that relative error, ``log(1 + cv^2)``
@@ -368,7 +380,8 @@ def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSett
     Parameters
     ----------
     name : str
-        Property name; ``"ph"`` selects ``lab_error_sd_ph``.
+        Property name; ``"ph"`` selects ``lab_error_sd_ph``, ``"buffer_ph"``
+        ``lab_error_sd_buffer_ph``.
     values : numpy.ndarray
         Sample values in the property's units (not logged).
     log : bool
@@ -382,8 +395,9 @@ def nugget_floor(name: str, values: np.ndarray, log: bool, settings: KrigingSett
         Squared property units, or squared log units when ``log``.
     """
     mean = float(np.mean(values))
-    if name == "ph":
-        sd = float(settings.lab_error_sd_ph)
+    if name in LOGARITHMIC:
+        sd = float(settings.lab_error_sd_buffer_ph if name == "buffer_ph"
+                   else settings.lab_error_sd_ph)
         return float(np.log1p((sd / mean) ** 2)) if log else sd**2
     cv = float(settings.lab_error_cv)
     if log:

@@ -46,6 +46,8 @@ _Y = ("y", "northing", "north", "ycoord", "utmy", "utmn")
 _ID = ("sampleid", "id", "sample", "sampleno", "samplenumber", "pointid", "labid", "name")
 _PH_WATER = ("ph", "phwater", "soilph", "phh2o", "waterph", "phw", "ph11")
 _PH_SALT = ("phsalt", "phcacl2", "phkcl", "saltph")
+#: What a pH column can measure (``samples.ph_kind``).
+PH_KINDS: tuple[str, ...] = ("auto", "water", "cacl2", "kcl")
 _TOTAL_P = ("totalp", "tp", "ptotal", "totalphosphorus")
 _STP_NAMED = {
     "mehlich3_colorimetric": ("m3pcol", "pm3col", "m3pcolorimetric", "pm3colorimetric",
@@ -95,8 +97,23 @@ class SampleColumns:
     id_column: str | None = _column(
         "column of sample identifiers; unset: auto-detect (sample_id, id, sample), else row numbers")
     ph_column: str | None = _column(
-        "column of soil pH (water); unset: auto-detect (ph, ph_water, soil_ph, ph_h2o; "
-        "ph_salt/ph_cacl2 accepted with a warning)")
+        "column of soil pH; unset: auto-detect (ph, ph_water, soil_ph, ph_h2o; else "
+        "ph_cacl2, ph_kcl, ph_salt, converted to water pH, see ph_kind)")
+    ph_kind: str = field(default="auto", metadata={
+        "unit": "",
+        "doc": "what the pH column measures: water, cacl2 (0.01 M CaCl2), kcl (1 M KCl), or "
+        "auto (from the column name; salt pH columns count as cacl2)",
+        "source": "common practice, no source"})
+    ph_cacl2_offset: float = field(default=0.6, metadata={
+        "unit": "pH units",
+        "doc": "water pH = CaCl2 pH + this offset (CaCl2 usually reads 0.5-1.0 lower)",
+        "source": "Rayment & Lyons, Soil Chemical Methods - Australasia, method 4B1 (0.5-1.0 "
+        "lower, Conyers & Davey 1988)"})
+    ph_kcl_offset: float = field(default=0.8, metadata={
+        "unit": "pH units",
+        "doc": "water pH = KCl pH + this offset (KCl reads below CaCl2)",
+        "source": "from memory, unverified (order H2O > CaCl2 > KCl: USDA Soil Survey "
+        "Laboratory Methods Manual, 1992)"})
     total_p_column: str | None = _column(
         "column of total P (mg/kg); unset: auto-detect (total_p, tp, p_total, totalp)")
     stp_column: str | None = _column(
@@ -113,6 +130,9 @@ class SampleColumns:
     def __post_init__(self) -> None:
         if self.stp_method is not None:
             check_choice("samples.stp_method", self.stp_method, STP_METHODS)
+        check_choice("samples.ph_kind", self.ph_kind, PH_KINDS)
+        for key in ("ph_cacl2_offset", "ph_kcl_offset"):
+            check_number(f"samples.{key}", getattr(self, key), ge=0, le=2)
         if self.duplicate_tolerance_m is not None:
             check_number("samples.duplicate_tolerance_m", self.duplicate_tolerance_m, ge=0,
                          finite=True)
@@ -186,14 +206,10 @@ def find_property_columns(
 
     if columns.ph_column is not None:
         claim("ph", _named(path, frame, columns.ph_column, "ph_column"))
-        if _compact(found["ph"]) in _PH_SALT:
-            _warn_salt(path, found["ph"])
     else:
         claim("ph", _find(frame, _PH_WATER, taken))
         if "ph" not in found:
             claim("ph", _find(frame, _PH_SALT, taken))
-            if "ph" in found:
-                _warn_salt(path, found["ph"])
     if "ph" not in found:
         raise InputError(
             f"{path.name}: no pH column found (columns: {_columns_text(frame)}): name it ph or "
@@ -311,12 +327,14 @@ def _no_crs(path: Path, frame: pd.DataFrame, xy: tuple[str, str]) -> str:
     )
 
 
-def _warn_salt(path: Path, col: str) -> None:
-    warnings.warn(
-        f"{path.name}: using salt pH column {col!r} as pH; pmap's pH thresholds assume water pH "
-        "(salt pH reads lower), so classes near a threshold may shift",
-        PmapWarning, stacklevel=4,
-    )
+def ph_kind_of(column: str, columns: SampleColumns) -> str:
+    """What a pH column measures: ``samples.ph_kind``, or with "auto" its name's hint."""
+    if columns.ph_kind != "auto":
+        return columns.ph_kind
+    name = _compact(column)
+    if name in _PH_SALT:
+        return "kcl" if "kcl" in name else "cacl2"
+    return "water"
 
 
 def _auto_stp(path: Path, frame: pd.DataFrame, columns: SampleColumns, taken: set[str]) -> str | None:

@@ -34,6 +34,7 @@ from pmap.io.columns import (
     find_coordinate_columns,
     find_id_column,
     find_property_columns,
+    ph_kind_of,
     stp_method_of,
 )
 from pmap.io.crs import is_projected_metres, normalise_crs, to_pyproj, utm_crs_for
@@ -258,6 +259,9 @@ def read_samples(
         values[name], note = to_canonical(name, column, raw, path.name)
         if note:
             notes.append(note)
+    note = _to_water_ph(path.name, values, found, columns)
+    if note:
+        notes.append(note)
     _check_ranges(path.name, values, found, rows)
     _check_plausible(path.name, values, found, rows)
 
@@ -467,6 +471,21 @@ def _converted(column: str, key: str) -> str:
     """", converted from g/kg to %" when the column was converted, else ""."""
     unit = split_unit(column)[1]
     return "" if unit is None or unit == CANONICAL_UNITS[key] else f", {_unit_read(column, key)}"
+
+
+def _to_water_ph(name: str, values: dict[str, np.ndarray], found: dict[str, str],
+                 columns: SampleColumns) -> str | None:
+    """Convert a CaCl2 or KCl pH column to water pH in place; the note says how."""
+    kind = ph_kind_of(found["ph"], columns)
+    if kind == "water":
+        return None
+    offset = columns.ph_cacl2_offset if kind == "cacl2" else columns.ph_kcl_offset
+    values["ph"] = values["ph"] + offset
+    label = "CaCl2" if kind == "cacl2" else "KCl"
+    note = (f"pH: column {found['ph']!r} read as {label} pH and converted to water pH "
+            f"(+{offset:g}, samples.ph_{kind}_offset; set samples.ph_kind if it is water pH)")
+    warnings.warn(f"{name}: {note}", PmapWarning, stacklevel=3)
+    return note
 
 
 def _check_ranges(name: str, values: dict[str, np.ndarray], found: dict[str, str],

@@ -202,6 +202,15 @@ class RateRule:
             "source": "common practice, no source",
         },
     )
+    allow_uncalibrated_model: bool = field(
+        default=False,
+        metadata={
+            "unit": "",
+            "doc": "accept rates from the soil model's estimate with default (uncalibrated) "
+            "parameters when the samples hold no lab soil-test P; without it such a run stops",
+            "source": "common practice, no source",
+        },
+    )
     deficiency_probability_threshold: float | None = field(
         default=None,
         metadata={

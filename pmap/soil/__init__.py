@@ -1,4 +1,5 @@
-"""Soil model: EPIC sorption, pH partition of total P, fixation risk and conversions.
+"""Soil model: EPIC sorption, pH partition of total P, fixation risk, calibration, lime,
+environmental P and conversions.
 
 Pure numerics on numpy arrays; see docs/soil-model.md for the equations.
 """
@@ -11,6 +12,7 @@ from pmap.soil.availability import (
     partition_total_p,
     peak_ph,
 )
+from pmap.soil.calibration import Calibration, CalibrationSettings, calibrate, calibrate_partition
 from pmap.soil.conversions import (
     KG_HA_PER_LB_ACRE,
     P2O5_PER_P,
@@ -25,6 +27,9 @@ from pmap.soil.fixation import (
     FixationRisk,
     fixation_risk,
 )
+from pmap.soil.environment import PsrParams, phosphorus_saturation_ratio
+from pmap.soil.lime import LimeParams, lime_requirement_t_acre, lime_requirement_t_ha
+from pmap.soil.model import SoilInputs, SoilModel, soil_model
 
 __all__ = [
     "PartitionParams",
@@ -43,4 +48,16 @@ __all__ = [
     "FixationParams",
     "FixationRisk",
     "fixation_risk",
+    "Calibration",
+    "CalibrationSettings",
+    "calibrate",
+    "calibrate_partition",
+    "PsrParams",
+    "phosphorus_saturation_ratio",
+    "LimeParams",
+    "lime_requirement_t_acre",
+    "lime_requirement_t_ha",
+    "SoilInputs",
+    "SoilModel",
+    "soil_model",
 ]

@@ -1,20 +1,28 @@
-"""pmap's pH partition of total soil P into available, Fe/Al-bound, Ca-bound and occluded pools.
+"""pmap's pH partition of total soil P into organic, available, Fe/Al-bound, Ca-bound and
+occluded pools.
 
 The model (equations in docs/soil-model.md):
 
-* an **occluded** fraction ``o`` set by the weathering class and scaled with clay the way
-  ``1 - PSP`` of the EPIC highly weathered equation scales with clay;
+* an **organic** pool from organic matter: ``OM * 10^4 * f_C / (C:P)`` mg/kg, at most
+  ``max_organic_fraction`` of total P; the rest is inorganic P;
+* an **occluded** fraction ``o`` of inorganic P set by the weathering class (field-wide or
+  per cell) and scaled with clay the way ``1 - PSP`` of the EPIC highly weathered equation
+  scales with clay;
 * a bell-shaped **availability curve** ``B(pH) = a(pH) k(pH) / peak`` in [0, 1], the product
   of a rising acid (Fe/Al) logistic ``a`` and a falling alkaline (Ca) logistic ``k``;
   CaCO3 deepens the alkaline arm (``k ** (1 + s * CaCO3)``);
-* the **available** fraction of total P ``(1 - o) * min(1, f_max * r_BS * B(pH))`` where
-  ``r_BS`` is the ratio of EPIC moderately weathered PSP at the soil's base saturation to
-  that at the default base saturation;
-* the rest of the non-occluded P split between **Fe/Al** and **Ca** in proportion to the
-  fixing strengths of the two arms, ``1 - a`` and ``1 - k``.
+* the **available** (labile) share ``(1 - o) * min(1, f_max * B(pH))`` of the inorganic P
+  that was in the soil before recent additions, plus the share of recently added P that is
+  still labile (the EPIC PSP of fresh P, supplied by :mod:`pmap.soil.model`), so fertilizer
+  history shows;
+* the rest of the non-occluded inorganic P split between **Fe/Al** and **Ca** in proportion
+  to ``1 - a + b_FeAl`` and ``(1 - k) * g_Ca``, where ``g_Ca`` is the calcium supply from
+  CaCO3 and exchangeable Ca, so a soil without carbonate or Ca holds little Ca phosphate.
 
-The four pools add up to total P for every cell.  All functions are vectorised; NaN in
-pH or total P gives NaN pools, NaN in an optional input falls back to its default.
+Acidity enters availability once, through ``B(pH)``; base saturation steers only the EPIC
+sorption of fresh P (:mod:`pmap.soil.fixation`).  The five pools add up to total P for
+every cell.  All functions are vectorised; NaN in pH or total P gives NaN pools, NaN in an
+optional input falls back to its default.
 """
 
 from __future__ import annotations
@@ -29,7 +37,7 @@ from scipy.optimize import least_squares, minimize_scalar
 
 from pmap._checks import check_choice, check_number
 from pmap.errors import ConfigError, InputError, InsufficientDataError, ModelFitError
-from pmap.soil.sorption import psp_highly_weathered, psp_moderately_weathered
+from pmap.soil.sorption import psp_highly_weathered
 
 __all__ = [
     "WEATHERING_CLASSES",
@@ -39,13 +47,16 @@ __all__ = [
     "peak_ph",
     "arm_strengths",
     "occluded_fraction",
+    "organic_p",
+    "calcium_supply",
+    "weathering_codes",
     "partition_total_p",
     "fit_partition",
 ]
 
 log = logging.getLogger(__name__)
 
-#: Weathering classes known to the model (field-wide setting).
+#: Weathering classes known to the model; per-cell codes are 1, 2, 3 in this order.
 WEATHERING_CLASSES: tuple[str, ...] = ("slight", "moderate", "high")
 
 _UNVERIFIED = "from memory, unverified"
@@ -107,7 +118,7 @@ class PartitionParams:
         default=0.05,
         metadata={
             "unit": "fraction",
-            "doc": "occluded share of total P in slightly weathered soils",
+            "doc": "occluded share of inorganic P (total P less organic P) in slightly weathered soils",
             "source": _UNVERIFIED,
         },
     )
@@ -115,7 +126,7 @@ class PartitionParams:
         default=0.15,
         metadata={
             "unit": "fraction",
-            "doc": "occluded share of total P in moderately weathered soils",
+            "doc": "occluded share of inorganic P (total P less organic P) in moderately weathered soils",
             "source": _UNVERIFIED,
         },
     )
@@ -123,7 +134,7 @@ class PartitionParams:
         default=0.50,
         metadata={
             "unit": "fraction",
-            "doc": "occluded share of total P in highly weathered soils",
+            "doc": "occluded share of inorganic P (total P less organic P) in highly weathered soils",
             "source": _UNVERIFIED,
         },
     )
@@ -163,8 +174,108 @@ class PartitionParams:
         default=80.0,
         metadata={
             "unit": "%",
-            "doc": "base saturation assumed where none is given; reference of the BS scaling",
+            "doc": "base saturation assumed where none is given (EPIC sorption of fresh P)",
             "source": _UNVERIFIED,
+        },
+    )
+    organic_c_to_p_ratio: float = field(
+        default=100.0,
+        metadata={
+            "unit": "g C per g P",
+            "doc": "C:P mass ratio of soil organic matter (organic P = organic C / ratio)",
+            "source": _UNVERIFIED,
+        },
+    )
+    organic_matter_carbon_fraction: float = field(
+        default=0.58,
+        metadata={
+            "unit": "fraction",
+            "doc": "organic carbon share of organic matter (van Bemmelen factor)",
+            "source": "common practice, no source",
+        },
+    )
+    default_om_pct: float = field(
+        default=3.0,
+        metadata={
+            "unit": "%",
+            "doc": "organic matter assumed where none is given",
+            "source": "common practice, no source",
+        },
+    )
+    max_organic_fraction: float = field(
+        default=0.7,
+        metadata={
+            "unit": "fraction",
+            "doc": "upper limit of the organic share of total P",
+            "source": "common practice, no source",
+        },
+    )
+    fe_al_background: float = field(
+        default=0.10,
+        metadata={
+            "unit": "fraction",
+            "doc": "Fe/Al weight added to the acid arm's strength when splitting fixed P: oxide "
+            "surfaces hold P at every pH",
+            "source": _UNVERIFIED,
+        },
+    )
+    caco3_half_supply_pct: float = field(
+        default=1.0,
+        metadata={
+            "unit": "%",
+            "doc": "CaCO3 at which the calcium supply for Ca phosphates is half of its maximum",
+            "source": _UNVERIFIED,
+        },
+    )
+    ca_half_supply_mg_kg: float = field(
+        default=1000.0,
+        metadata={
+            "unit": "mg/kg",
+            "doc": "exchangeable (Mehlich-3) Ca at which the calcium supply is half its maximum",
+            "source": _UNVERIFIED,
+        },
+    )
+    min_calcium_supply: float = field(
+        default=0.2,
+        metadata={
+            "unit": "fraction",
+            "doc": "calcium supply of a soil whose CaCO3 (and Ca) were measured and are nil",
+            "source": _UNVERIFIED,
+        },
+    )
+    recent_p2o5_kg_ha: float = field(
+        default=0.0,
+        metadata={
+            "unit": "kg P2O5/ha",
+            "doc": "P2O5 applied since the last crop before sampling, field-wide (its labile "
+            "share is the EPIC PSP of fresh P)",
+            "source": "common practice, no source",
+        },
+    )
+    recent_p2o5_raster: str | None = field(
+        default=None,
+        metadata={
+            "unit": "kg P2O5/ha",
+            "doc": "raster of P2O5 applied since the last crop (an as-applied map), replaces "
+            "recent_p2o5_kg_ha where it has data",
+            "source": "common practice, no source",
+        },
+    )
+    weathering_raster: str | None = field(
+        default=None,
+        metadata={
+            "unit": "class code",
+            "doc": "raster of weathering classes (1 slight, 2 moderate, 3 high) from a soil map; "
+            "cells without data use weathering",
+            "source": "common practice, no source",
+        },
+    )
+    bulk_density_g_cm3: float = field(
+        default=1.3,
+        metadata={
+            "unit": "g/cm3",
+            "doc": "dry bulk density of the sampled layer (turns kg/ha of added P into mg/kg)",
+            "source": "common practice, no source",
         },
     )
 
@@ -188,23 +299,35 @@ class PartitionParams:
         ):
             check_number(f"soil.{key}", getattr(self, key), ge=0, le=1)
         check_number("soil.max_labile_fraction", self.max_labile_fraction, gt=0)
-        for key in ("caco3_strength_per_pct", "default_caco3_pct"):
-            check_number(f"soil.{key}", getattr(self, key), ge=0)
+        for key in ("caco3_strength_per_pct", "default_caco3_pct", "default_om_pct",
+                    "fe_al_background", "recent_p2o5_kg_ha"):
+            check_number(f"soil.{key}", getattr(self, key), ge=0, finite=True)
+        for key in ("organic_c_to_p_ratio", "caco3_half_supply_pct", "ca_half_supply_mg_kg",
+                    "bulk_density_g_cm3"):
+            check_number(f"soil.{key}", getattr(self, key), gt=0, finite=True)
+        for key in ("organic_matter_carbon_fraction", "max_organic_fraction",
+                    "min_calcium_supply"):
+            check_number(f"soil.{key}", getattr(self, key), ge=0, le=1)
         check_number("soil.default_clay_pct", self.default_clay_pct, gt=0)
         check_number("soil.default_base_saturation_pct", self.default_base_saturation_pct,
                      gt=0, le=100)
 
     @property
     def base_occluded_fraction(self) -> float:
-        """Occluded share of total P for :attr:`weathering` before the clay scaling."""
+        """Occluded share of inorganic P for :attr:`weathering` before the clay scaling."""
         return float(getattr(self, f"occluded_fraction_{self.weathering}"))
+
+    @property
+    def weathering_code(self) -> int:
+        """Code of :attr:`weathering` (1 slight, 2 moderate, 3 high)."""
+        return WEATHERING_CLASSES.index(self.weathering) + 1
 
 
 @dataclass(frozen=True)
 class SoilPools:
-    """Total P split into four pools (mg/kg arrays of one shape).
+    """Total P split into five pools (mg/kg arrays of one shape).
 
-    ``available + fe_al + ca + occluded`` equals total P to float round-off.
+    ``available + fe_al + ca + occluded + organic`` equals total P to float round-off.
     ``labile_fraction`` is ``available / total`` as the model computed it (fraction).
     """
 
@@ -212,18 +335,22 @@ class SoilPools:
     fe_al: np.ndarray
     ca: np.ndarray
     occluded: np.ndarray
+    organic: np.ndarray
     labile_fraction: np.ndarray
+
+    #: Names of the pools, in the order of the attributes.
+    NAMES = ("available", "fe_al", "ca", "occluded", "organic")
 
     @property
     def total(self) -> np.ndarray:
-        """Sum of the four pools (mg/kg)."""
-        return self.available + self.fe_al + self.ca + self.occluded
+        """Sum of the five pools (mg/kg)."""
+        return self.available + self.fe_al + self.ca + self.occluded + self.organic
 
     def as_fractions(self) -> dict[str, np.ndarray]:
         """Each pool as a fraction of total P (NaN where total P is 0 or NaN)."""
         total = self.total
         out = {}
-        for name in ("available", "fe_al", "ca", "occluded"):
+        for name in self.NAMES:
             pool = getattr(self, name)
             frac = np.full(total.shape, np.nan)
             np.divide(pool, total, out=frac, where=total > 0)
@@ -321,33 +448,100 @@ def arm_strengths(
     return 1.0 - acid, 1.0 - alkaline
 
 
+def weathering_codes(
+    codes: ArrayLike | None, params: PartitionParams, shape: tuple[int, ...]
+) -> np.ndarray:
+    """Per-cell weathering codes (1 slight, 2 moderate, 3 high) as int8 of ``shape``.
+
+    ``codes`` may be None (every cell takes ``params.weathering``) or an array whose NaN,
+    0 or out-of-range cells take it too.
+    """
+    fallback = params.weathering_code
+    if codes is None:
+        return np.full(shape, fallback, dtype=np.int8)
+    arr = np.broadcast_to(np.asarray(codes, dtype=float), shape)
+    valid = np.isin(arr, (1.0, 2.0, 3.0))
+    return np.where(valid, np.nan_to_num(arr), fallback).astype(np.int8)
+
+
 def occluded_fraction(
     params: PartitionParams = PartitionParams(),
     *,
     clay_pct: ArrayLike | None = None,
+    weathering_code: ArrayLike | None = None,
     shape: tuple[int, ...] = (),
 ) -> np.ndarray:
-    """Occluded share of total P (fraction) for the weathering class, scaled by clay.
+    """Occluded share of inorganic P (fraction) for the weathering class, scaled by clay.
 
     ``o = o_class * (1 - PSP_hw(clay)) / (1 - PSP_hw(clay_ref))``, clipped to
     ``[0, max_occluded_fraction]``, where PSP_hw is the EPIC highly weathered equation and
-    ``clay_ref = params.default_clay_pct``.
+    ``clay_ref = params.default_clay_pct``.  ``weathering_code`` (per cell, see
+    :func:`weathering_codes`) overrides ``params.weathering`` where it has a class.
     """
-    if clay_pct is not None:
-        shape = np.broadcast_shapes(np.shape(clay_pct), shape)
+    for extra in (clay_pct, weathering_code):
+        if extra is not None:
+            shape = np.broadcast_shapes(np.shape(extra), shape)
     clay = _optional(clay_pct, params.default_clay_pct, shape)
     clay = np.where(clay > 0, clay, params.default_clay_pct)
     scale = (1.0 - psp_highly_weathered(clay)) / (
         1.0 - psp_highly_weathered(params.default_clay_pct)
     )
-    return np.clip(params.base_occluded_fraction * scale, 0.0, params.max_occluded_fraction)
+    by_class = np.array([0.0, params.occluded_fraction_slight,
+                         params.occluded_fraction_moderate, params.occluded_fraction_high])
+    base = by_class[weathering_codes(weathering_code, params, shape)]
+    return np.clip(base * scale, 0.0, params.max_occluded_fraction)
 
 
-def _base_saturation_ratio(bs: np.ndarray, params: PartitionParams) -> np.ndarray:
-    ph_top = peak_ph(params)
-    return psp_moderately_weathered(bs, ph_top) / psp_moderately_weathered(
-        params.default_base_saturation_pct, ph_top
-    )
+def organic_p(
+    total_p: ArrayLike, params: PartitionParams = PartitionParams(), *,
+    om_pct: ArrayLike | None = None,
+) -> np.ndarray:
+    """Organic P (mg/kg): ``OM * 10^4 * f_C / (C:P)``, at most ``max_organic_fraction * total``.
+
+    Parameters
+    ----------
+    total_p : array_like
+        Total P (mg/kg).
+    params : PartitionParams
+        ``organic_matter_carbon_fraction``, ``organic_c_to_p_ratio``, ``default_om_pct``
+        (used where ``om_pct`` is absent or NaN) and ``max_organic_fraction``.
+    om_pct : array_like, optional
+        Soil organic matter (% by mass).
+    """
+    total = np.asarray(total_p, dtype=float)
+    om = np.maximum(_optional(om_pct, params.default_om_pct, total.shape), 0.0)
+    from_om = om * 1e4 * params.organic_matter_carbon_fraction / params.organic_c_to_p_ratio
+    return np.minimum(from_om, params.max_organic_fraction * total)
+
+
+def calcium_supply(
+    params: PartitionParams = PartitionParams(), *,
+    caco3_pct: ArrayLike | None = None,
+    ca_mg_kg: ArrayLike | None = None,
+    shape: tuple[int, ...] = (),
+) -> np.ndarray:
+    """Calcium supply for Ca phosphates, ``g_Ca`` in [min_calcium_supply, 1] (fraction).
+
+    ``max(C / (C + C_half), Ca / (Ca + Ca_half))`` from CaCO3 (%) and exchangeable Ca
+    (mg/kg), floored at ``min_calcium_supply``.  A cell with neither measured takes 1: the
+    Ca arm then follows pH alone, as it did before calcium was considered.
+    """
+    for extra in (caco3_pct, ca_mg_kg):
+        if extra is not None:
+            shape = np.broadcast_shapes(np.shape(extra), shape)
+    supply = np.full(shape, np.nan)
+    measured = np.zeros(shape, dtype=bool)
+    for x, half in ((caco3_pct, params.caco3_half_supply_pct),
+                    (ca_mg_kg, params.ca_half_supply_mg_kg)):
+        if x is None:
+            continue
+        arr = np.broadcast_to(np.asarray(x, dtype=float), shape)
+        known = np.isfinite(arr)
+        part = np.where(known, np.maximum(arr, 0.0) / (np.maximum(arr, 0.0) + half), 0.0)
+        supply = np.where(known, np.fmax(supply, part), supply)
+        measured |= known
+    supply = np.maximum(np.nan_to_num(supply, nan=0.0), params.min_calcium_supply)
+    return np.where(measured, supply, 1.0)
 
 
 def partition_total_p(
@@ -357,21 +551,34 @@ def partition_total_p(
     *,
     caco3_pct: ArrayLike | None = None,
     clay_pct: ArrayLike | None = None,
-    base_saturation_pct: ArrayLike | None = None,
+    om_pct: ArrayLike | None = None,
+    ca_mg_kg: ArrayLike | None = None,
+    weathering_code: ArrayLike | None = None,
+    recent_p_mg_kg: ArrayLike | None = None,
+    fresh_labile_fraction: ArrayLike | None = None,
 ) -> SoilPools:
-    """Split total P into available, Fe/Al-bound, Ca-bound and occluded pools.
+    """Split total P into available, Fe/Al-bound, Ca-bound, occluded and organic pools.
 
     Parameters
     ----------
     ph : array_like
-        Soil pH (pH units).
+        Soil pH in water (pH units).
     total_p : array_like
         Total soil P (mg/kg), same shape as ``ph`` (or broadcastable).
     params : PartitionParams
         Model parameters.
-    caco3_pct, clay_pct, base_saturation_pct : array_like, optional
-        CaCO3 (%), clay (%) and base saturation (%).  Absent inputs and NaN cells use
-        the defaults in ``params``.
+    caco3_pct, clay_pct, om_pct : array_like, optional
+        CaCO3 (%), clay (%) and organic matter (%).  Absent inputs and NaN cells use the
+        defaults in ``params``.
+    ca_mg_kg : array_like, optional
+        Exchangeable (Mehlich-3) Ca (mg/kg), for the calcium supply of Ca phosphates.
+    weathering_code : array_like, optional
+        Per-cell weathering class (1 slight, 2 moderate, 3 high); elsewhere ``params``.
+    recent_p_mg_kg : array_like, optional
+        P added since the last crop (mg/kg of the sampled layer; part of ``total_p``).
+    fresh_labile_fraction : array_like, optional
+        Share of the recently added P still labile (the EPIC PSP of fresh P); without it
+        the added P is treated like the rest of the inorganic P.
 
     Returns
     -------
@@ -390,27 +597,38 @@ def partition_total_p(
         raise InputError("pH must lie in [0, 14]; found values outside")
     shape = ph.shape
     caco3 = _optional(caco3_pct, params.default_caco3_pct, shape)
-    bs = _optional(base_saturation_pct, params.default_base_saturation_pct, shape)
 
+    organic = organic_p(total, params, om_pct=om_pct)
+    inorganic = total - organic
     curve = availability_curve(ph, params, caco3_pct=caco3)
-    occluded_share = occluded_fraction(params, clay_pct=clay_pct, shape=shape)
-    labile_of_free = np.minimum(
-        params.max_labile_fraction * _base_saturation_ratio(bs, params) * curve, 1.0
-    )
-    labile_fraction = (1.0 - occluded_share) * labile_of_free
-
-    available = labile_fraction * total
-    occluded = occluded_share * total
-    fixed = total - available - occluded
+    occluded_share = occluded_fraction(params, clay_pct=clay_pct,
+                                       weathering_code=weathering_code, shape=shape)
+    labile_share = (1.0 - occluded_share) * np.minimum(params.max_labile_fraction * curve, 1.0)
+    occluded = occluded_share * inorganic
+    available = labile_share * inorganic
+    if recent_p_mg_kg is not None:
+        added = np.clip(_optional(recent_p_mg_kg, 0.0, shape), 0.0, None)
+        added = np.minimum(added, inorganic - occluded)
+        fresh = (labile_share if fresh_labile_fraction is None
+                 else np.clip(_optional(fresh_labile_fraction, 0.0, shape), 0.0, 1.0))
+        available = labile_share * (inorganic - added) + fresh * added
+        available = np.minimum(available, inorganic - occluded)
+    fixed = inorganic - available - occluded
     acid_strength, alkaline_strength = arm_strengths(ph, params, caco3_pct=caco3)
-    strength = acid_strength + alkaline_strength
-    fe_al_share = np.full(shape, 0.5)
-    np.divide(acid_strength, strength, out=fe_al_share, where=strength > 0)
+    fe_weight = acid_strength + params.fe_al_background
+    ca_weight = alkaline_strength * calcium_supply(
+        params, caco3_pct=caco3_pct, ca_mg_kg=ca_mg_kg, shape=shape)
+    weight = fe_weight + ca_weight
+    fe_al_share = np.ones(shape)
+    np.divide(fe_weight, weight, out=fe_al_share, where=weight > 0)
     fe_al = fixed * fe_al_share
     ca = fixed - fe_al
+    labile_fraction = np.zeros(shape)
+    np.divide(available, total, out=labile_fraction, where=total > 0)
 
     bad = np.isnan(ph) | np.isnan(total)
-    pools = [np.where(bad, np.nan, p) for p in (available, fe_al, ca, occluded, labile_fraction)]
+    pools = [np.where(bad, np.nan, p)
+             for p in (available, fe_al, ca, occluded, organic, labile_fraction)]
     return SoilPools(*pools)
 
 
@@ -432,7 +650,8 @@ def fit_partition(
     fit: tuple[str, ...] = ("max_labile_fraction", "acid_midpoint_ph", "alkaline_midpoint_ph"),
     caco3_pct: ArrayLike | None = None,
     clay_pct: ArrayLike | None = None,
-    base_saturation_pct: ArrayLike | None = None,
+    om_pct: ArrayLike | None = None,
+    ca_mg_kg: ArrayLike | None = None,
     loss: str = "linear",
 ) -> PartitionParams:
     """Calibrate the availability curve to paired lab data by least squares.
@@ -450,7 +669,7 @@ def fit_partition(
         Names of the parameters to fit; any of ``max_labile_fraction``,
         ``acid_midpoint_ph``, ``alkaline_midpoint_ph``, ``acid_width_ph``,
         ``alkaline_width_ph``.
-    caco3_pct, clay_pct, base_saturation_pct : array_like, optional
+    caco3_pct, clay_pct, om_pct, ca_mg_kg : array_like, optional
         Per-sample optional inputs as in :func:`partition_total_p`.
     loss : str
         ``scipy.optimize.least_squares`` loss (``"linear"``, ``"soft_l1"``, ``"huber"``...).
@@ -478,7 +697,8 @@ def fit_partition(
     extras = {
         "caco3_pct": caco3_pct,
         "clay_pct": clay_pct,
-        "base_saturation_pct": base_saturation_pct,
+        "om_pct": om_pct,
+        "ca_mg_kg": ca_mg_kg,
     }
     extras = {k: None if v is None else np.ravel(np.asarray(v, float)) for k, v in extras.items()}
     keep = np.isfinite(ph_a) & np.isfinite(total_a) & np.isfinite(measured)

@@ -26,12 +26,18 @@ def test_pools_sum_to_total_for_every_cell():
     extras = {
         "caco3_pct": rng.uniform(0, 30, (40, 30)),
         "clay_pct": rng.uniform(2, 70, (40, 30)),
-        "base_saturation_pct": rng.uniform(20, 100, (40, 30)),
+        "om_pct": rng.uniform(0, 12, (40, 30)),
+        "ca_mg_kg": rng.uniform(100, 6000, (40, 30)),
+        "recent_p_mg_kg": rng.uniform(0, 80, (40, 30)),
+        "fresh_labile_fraction": rng.uniform(0.05, 0.75, (40, 30)),
     }
+    codes = rng.integers(0, 4, (40, 30)).astype(float)
     for weathering in ("slight", "moderate", "high"):
-        pools = partition_total_p(ph, total, PartitionParams(weathering=weathering), **extras)
-        np.testing.assert_allclose(pools.total, total, rtol=1e-12)
-        for pool in (pools.available, pools.fe_al, pools.ca, pools.occluded):
+        params = PartitionParams(weathering=weathering)
+        for per_cell in (None, codes):
+            pools = partition_total_p(ph, total, params, weathering_code=per_cell, **extras)
+            np.testing.assert_allclose(pools.total, total, rtol=1e-12)
+        for pool in (pools.available, pools.fe_al, pools.ca, pools.occluded, pools.organic):
             assert pool.shape == (40, 30)
             assert (pool >= 0).all()
         fractions = pools.as_fractions()
@@ -74,8 +80,9 @@ def test_fe_al_dominates_acid_ca_dominates_alkaline():
 def test_highly_weathered_high_total_low_available():
     # Source: Walker & Syers (1976), Geoderma 15:1-19 (occluded P dominates in highly weathered soils)
     ph = np.full(3, 6.5)
-    moderate = partition_total_p(ph, 600.0, PartitionParams(weathering="moderate"))
-    high = partition_total_p(ph, 1200.0, PartitionParams(weathering="high"))
+    # organic P in proportion to total P in both soils (OM 3 % and 6 %)
+    moderate = partition_total_p(ph, 600.0, PartitionParams(weathering="moderate"), om_pct=3.0)
+    high = partition_total_p(ph, 1200.0, PartitionParams(weathering="high"), om_pct=6.0)
     assert (high.occluded > high.available + high.fe_al + high.ca - 1e-9).all()
     # twice the total P need not give more available P than the moderately weathered soil
     assert high.available[0] < 1.2 * moderate.available[0]
@@ -100,11 +107,61 @@ def test_clay_scales_occlusion_like_epic_highly_weathered():
     assert occ[2] / occ[1] == pytest.approx(ratio)
 
 
-def test_base_saturation_lowers_available():
-    pools = partition_total_p(np.full(2, 6.0), 600.0, base_saturation_pct=np.array([40.0, 80.0]))
-    default = partition_total_p(6.0, 600.0)
-    assert pools.available[0] < pools.available[1]
-    assert pools.available[1] == pytest.approx(float(default.available))
+def test_base_saturation_does_not_count_acidity_twice():
+    # Acidity enters availability once, through the pH curve: base saturation (which
+    # falls with pH) no longer scales available P on top of it.
+    ph = np.full(2, 5.0)
+    pools = partition_total_p(ph, 600.0)
+    assert pools.available[0] == pytest.approx(pools.available[1])
+    with pytest.raises(TypeError):
+        partition_total_p(ph, 600.0, base_saturation_pct=np.array([40.0, 80.0]))
+
+
+def test_organic_pool_from_organic_matter():
+    # common practice, no source: organic C = 0.58 x organic matter (van Bemmelen);
+    # from memory, unverified: soil organic matter C:P about 100
+    params = PartitionParams()
+    pools = partition_total_p(np.full(3, 6.5), np.array([600.0, 600.0, 100.0]),
+                              om_pct=np.array([2.0, 4.0, 4.0]))
+    np.testing.assert_allclose(pools.organic[:2], [116.0, 232.0], rtol=1e-12)
+    assert pools.organic[2] == pytest.approx(params.max_organic_fraction * 100.0)
+    # more organic matter, less inorganic P for the other pools
+    assert pools.available[1] < pools.available[0]
+    # absent OM takes the default (3 %)
+    default = partition_total_p(6.5, 600.0)
+    assert float(default.organic) == pytest.approx(3.0 * 1e4 * 0.58 / 100.0)
+
+
+def test_recent_additions_raise_available_p():
+    # Source: Jones et al. (1984): PSP is the share of added P still labile after
+    # incubation, so recently added P is more available than the old pool
+    ph = np.full(2, 6.5)
+    old = partition_total_p(ph, 600.0)
+    # same total P, but 40 mg/kg of it added recently with PSP 0.456
+    recent = partition_total_p(ph, 600.0, recent_p_mg_kg=np.array([0.0, 40.0]),
+                               fresh_labile_fraction=np.full(2, 0.456))
+    assert recent.available[0] == pytest.approx(old.available[0])
+    share = old.available[0] / (600.0 - old.organic[0])
+    expected = old.available[0] + 40.0 * (0.456 - share)
+    assert recent.available[1] == pytest.approx(expected, rel=1e-12)
+    assert recent.available[1] > 1.5 * old.available[1]
+    np.testing.assert_allclose(recent.total, 600.0, rtol=1e-12)
+
+
+def test_ca_bound_p_needs_carbonate_or_calcium():
+    # common practice, no source: in a soil without CaCO3 near neutral pH, Ca phosphates
+    # are a minor pool; with free carbonate they dominate the fixed P
+    ph = np.array([6.5, 7.0, 8.0])
+    none = partition_total_p(ph, 600.0, caco3_pct=np.zeros(3))
+    share = none.ca / (none.ca + none.fe_al)
+    assert share[0] < 0.10 and share[1] < 0.25
+    calcareous = partition_total_p(ph, 600.0, caco3_pct=np.full(3, 10.0))
+    assert (calcareous.ca > none.ca).all()
+    assert calcareous.ca[2] > calcareous.fe_al[2]
+    rich = partition_total_p(ph, 600.0, caco3_pct=np.zeros(3), ca_mg_kg=np.full(3, 5000.0))
+    assert (rich.ca > none.ca).all()
+    more = [partition_total_p(8.0, 600.0, caco3_pct=c).ca for c in (1.0, 5.0, 20.0)]
+    assert more[0] < more[1] < more[2]
 
 
 def test_nan_handling():

@@ -212,11 +212,33 @@ def test_duplicates_are_averaged_with_a_warning_naming_ids(tmp_path):
     assert list(table.rows) == [2, 4]
 
 
-def test_salt_ph_only_is_accepted_with_a_warning(tmp_path):
-    text = "id,lat,lon,ph_cacl2,total_p\na,40.1,-88.9,5.5,400\n"
-    with pytest.warns(PmapWarning, match="salt pH column 'ph_cacl2'"):
+def test_salt_ph_is_converted_to_water_ph_with_a_warning(tmp_path):
+    # Source: Rayment & Lyons, Soil Chemical Methods - Australasia, method 4B1: CaCl2 pH
+    # reads 0.5-1.0 below water pH (pmap's default offset 0.6 lies in that range)
+    text = "id,lat,lon,ph_cacl2,total_p\na,40.1,-88.9,5.4,400\n"
+    with pytest.warns(PmapWarning, match="'ph_cacl2' read as CaCl2 pH and converted"):
         table = load_samples(_write(tmp_path, "salt.csv", text))
-    assert table.values["ph"][0] == 5.5
+    assert table.values["ph"][0] == pytest.approx(6.0)
+    assert any("ph_cacl2_offset" in note for note in table.notes)
+
+
+def test_kcl_ph_and_explicit_kinds(tmp_path):
+    text = "id,lat,lon,ph_kcl,total_p\na,40.1,-88.9,5.0,400\n"
+    with pytest.warns(PmapWarning, match="KCl pH"):
+        table = load_samples(_write(tmp_path, "kcl.csv", text))
+    assert table.values["ph"][0] == pytest.approx(5.8)
+    # a plain "ph" column the user says is CaCl2, with their own offset
+    text = "id,lat,lon,ph,total_p\na,40.1,-88.9,5.0,400\n"
+    cols = SampleColumns(ph_kind="cacl2", ph_cacl2_offset=0.5)
+    with pytest.warns(PmapWarning, match="CaCl2"):
+        table = load_samples(_write(tmp_path, "c.csv", text), cols)
+    assert table.values["ph"][0] == pytest.approx(5.5)
+    # and a salt-named column the user says is water pH stays as it is
+    text = "id,lat,lon,ph_salt,total_p\na,40.1,-88.9,6.0,400\n"
+    table = load_samples(_write(tmp_path, "w.csv", text), SampleColumns(ph_kind="water"))
+    assert table.values["ph"][0] == 6.0
+    with pytest.raises(ConfigError, match="samples.ph_kind"):
+        SampleColumns(ph_kind="acetate")
 
 
 def test_optional_columns_detected(tmp_path):

@@ -8,6 +8,12 @@ from scipy.spatial.distance import cdist
 from scipy.stats import norm
 
 from pmap.errors import ModelFitError, PmapWarning
+from pmap.geostats import simulation
+from pmap.geostats.neighbourhood import (
+    NeighbourSearch,
+    local_ordinary_kriging,
+    numba_available,
+)
 from pmap.geostats.simulation import (
     NormalScore,
     _neighbour_sets,
@@ -17,6 +23,8 @@ from pmap.geostats.simulation import (
     simulate_normal_scores,
 )
 from pmap.geostats.variogram import VariogramModel
+
+ENGINES = ["numpy"] + (["numba"] if numba_available() else [])
 
 
 def _grid(n: int, spacing: float = 1.0) -> np.ndarray:
@@ -97,13 +105,14 @@ def test_normal_score_rejects_bad_bounds():
 # ---------------------------------------------------------------- neighbour search
 
 
+@pytest.mark.parametrize("engine", ENGINES)
 @pytest.mark.parametrize("radius", [None, 0.08])
-def test_neighbour_sets_are_the_nearest_earlier_points(radius):
+def test_neighbour_sets_are_the_nearest_earlier_points(radius, engine):
     rng = np.random.default_rng(3)
     samples = rng.random((40, 2))
     nodes = rng.random((2500, 2))  # more than one search block
     k = 12
-    idx = _neighbour_sets(samples, nodes, k, radius)
+    idx = _neighbour_sets(samples, nodes, k, radius, engine)
     pts = np.vstack([samples, nodes])
     for t in rng.choice(nodes.shape[0], 150, replace=False):
         d = np.hypot(*(pts[: 40 + t] - nodes[t]).T)
@@ -114,6 +123,28 @@ def test_neighbour_sets_are_the_nearest_earlier_points(radius):
         assert np.all(got_ids < 40 + t)  # only samples and earlier nodes
         got = np.hypot(*(pts[got_ids] - nodes[t]).T)
         np.testing.assert_allclose(got, want, rtol=1e-12)
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_neighbour_sets_on_a_grid_break_ties_by_index_whatever_the_blocks(engine, monkeypatch):
+    # Grid nodes are equally distant in shells of 4 and 8: every step (the engine's search,
+    # the brute force within a block, the union) orders by squared distance, then index,
+    # so the sets are those of a brute force over all earlier points, for any block size.
+    rng = np.random.default_rng(8)
+    samples = rng.random((30, 2)) * 4.0
+    nodes = _grid(40, 0.1)[rng.permutation(1600)]
+    pts = np.vstack([samples, nodes])
+    k = 16
+    want = np.empty((1600, k), dtype=np.int64)
+    for t in range(1600):
+        dx = pts[: 30 + t, 0] - nodes[t, 0]
+        dy = pts[: 30 + t, 1] - nodes[t, 1]
+        order = np.lexsort((np.arange(30 + t), dx * dx + dy * dy))[:k]
+        want[t] = np.pad(order, (0, k - order.size), constant_values=-1)
+    for block, rows in [(1024, 128), (300, 7)]:
+        monkeypatch.setattr(simulation, "_SEARCH_BLOCK", block)
+        monkeypatch.setattr(simulation, "_BRUTE_ROWS", rows)
+        np.testing.assert_array_equal(_neighbour_sets(samples, nodes, k, None, engine), want)
 
 
 # ---------------------------------------------------------------- simulation
@@ -230,8 +261,88 @@ def test_unconditional_variogram_matches_gstools():
     assert np.all(np.abs(g_sim.mean(axis=0) - g_ref.mean(axis=0)) < 4.0 * se + 0.04)
 
 
+@pytest.mark.parametrize("engine", ENGINES)
+def test_first_node_is_simple_kriging_from_the_engines_neighbour_set(engine):
+    # A single target has no earlier node on the path: the simulation draws it from simple
+    # kriging on the k nearest samples that the engine's search returns, the same set
+    # local ordinary kriging uses.  The draws are reproduced from the seed's stream
+    # (path first, then the noise).
+    rng = np.random.default_rng(12)
+    coords = rng.random((200, 2)) * 100.0
+    scores = rng.normal(size=200)
+    target = np.array([[41.3, 57.9]])
+    model = VariogramModel("spherical", 0.1, 0.9, 40.0, ratio=0.6, angle=35.0)
+    k, radius = 10, 30.0
+    idx, _ = NeighbourSearch(model.isotropic_coords(coords), k, radius, engine=engine).query(
+        model.isotropic_coords(target))
+    assert np.all(idx >= 0)
+    near = idx[0]
+    # Local ordinary kriging from the search's set equals a dense solve on that set.
+    from pmap.geostats.kriging import ordinary_kriging
+
+    est, var, _, _ = local_ordinary_kriging(coords, scores, target, model, k, radius,
+                                            engine=engine)
+    dense = ordinary_kriging(coords[near], scores[near], target, model)
+    assert est[0] == pytest.approx(dense.estimate[0], abs=1e-12)
+    assert var[0] == pytest.approx(dense.variance[0], abs=1e-12)
+    # The simulation: mean and sd of simple kriging on the same set, noise from the seed.
+    c = _anisotropic_cov(model)
+    w = np.linalg.solve(c(coords[near], coords[near]), c(coords[near], target))[:, 0]
+    sd = np.sqrt(model.sill - w @ c(coords[near], target)[:, 0])
+    sim = simulate_normal_scores(coords, scores, target, model, n_realisations=50, seed=21,
+                                 neighbours=k, radius=radius, engine=engine)
+    stream = np.random.default_rng(21)
+    stream.permutation(1)
+    noise = stream.standard_normal((1, 50))[0]
+    np.testing.assert_allclose(sim[:, 0], w @ scores[near] + sd * noise, rtol=0, atol=1e-12)
+
+
+def test_simulation_runs_the_engines_search(small_case, monkeypatch):
+    calls = []
+    query = NeighbourSearch.query
+
+    def spy(self, queries, **kw):
+        calls.append(self.engine)
+        return query(self, queries, **kw)
+
+    monkeypatch.setattr(NeighbourSearch, "query", spy)
+    coords, values, targets, model = small_case
+    for engine in ENGINES:
+        calls.clear()
+        simulate_normal_scores(coords, values, targets, model, n_realisations=2, seed=0,
+                               engine=engine)
+        # Once to find targets on the data, once per search block.
+        assert calls == [engine, engine]
+    # "auto" resolves as local kriging does: numpy under PMAP_NUMPY_ONLY or for a matern.
+    calls.clear()
+    simulate_normal_scores(coords, values, targets, VariogramModel("matern", 0.0, 1.0, 6.0, 1.5),
+                           n_realisations=2, seed=0)
+    monkeypatch.setenv("PMAP_NUMPY_ONLY", "1")
+    simulate_normal_scores(coords, values, targets, model, n_realisations=2, seed=0)
+    assert calls == ["numpy"] * 4
+
+
+@pytest.mark.skipif(not numba_available(), reason="numba not installed")
+@pytest.mark.parametrize("radius", [None, 3.5])
+def test_numpy_and_numba_engines_give_the_same_realisations(radius):
+    # A grid (ties everywhere), samples among the cells, more than one search block, an
+    # anisotropic model: the same sets, and the weights to round-off.
+    rng = np.random.default_rng(6)
+    targets = _grid(48, 0.5)
+    coords = np.vstack([rng.random((60, 2)) * 24.0, targets[[5, 700, 2000]]])
+    values = rng.lognormal(1.0, 0.5, coords.shape[0])
+    model = VariogramModel("exponential", 0.05, 0.95, 9.0, ratio=0.5, angle=30.0)
+    a = sequential_gaussian_simulation(coords, values, targets, model, n_realisations=20,
+                                       seed=4, radius=radius, engine="numpy")
+    b = sequential_gaussian_simulation(coords, values, targets, model, n_realisations=20,
+                                       seed=4, radius=radius, engine="numba")
+    np.testing.assert_allclose(a, b, rtol=0, atol=1e-10)
+
+
 def test_ill_conditioned_systems_warn_and_stay_finite():
-    model = VariogramModel("gaussian", 0.0, 1.0, 30.0)  # no nugget, range >> spacing
+    # No nugget, range >> spacing.  The engine regularises a system whose reciprocal
+    # condition estimate is below 1e-12 (as local kriging does): 53 of the 225 here.
+    model = VariogramModel("gaussian", 0.0, 1.0, 60.0)
     with pytest.warns(PmapWarning, match="ill-conditioned"):
         sim = simulate_normal_scores(np.empty((0, 2)), np.empty(0), _grid(15), model,
                                      n_realisations=50, seed=0)
@@ -313,3 +424,30 @@ def test_simulate_property_is_seeded_and_brackets_the_kriging_estimate():
     assert a.shape == (60, targets.shape[0]) and model.sill == pytest.approx(1.0)
     est = ordinary_kriging(xy, z, targets, VariogramModel("spherical", 0.25, 18.0, 300.0))
     assert np.corrcoef(np.median(a, axis=0), est.estimate)[0, 1] > 0.95
+
+
+def test_each_property_gets_its_own_random_stream():
+    # common practice, no source: independent properties simulated with one seed share the
+    # random path and the noise, so their realisations would correlate cell by cell.
+    from pmap.geostats.simulation import simulate_property
+    from pmap.pipeline import property_seed
+
+    rng = np.random.default_rng(4)
+    xy = rng.random((80, 2)) * 400.0
+    ph = 6.0 + 0.4 * np.sin(xy[:, 0] / 70.0) + rng.normal(0.0, 0.1, 80)
+    total = 600.0 + 90.0 * np.cos(xy[:, 1] / 60.0) + rng.normal(0.0, 20.0, 80)
+    gx, gy = np.meshgrid(np.arange(15.0, 400.0, 50.0), np.arange(15.0, 400.0, 50.0))
+    targets = np.column_stack([gx.ravel(), gy.ravel()])
+
+    def cell_correlation(seed_a: int, seed_b: int) -> float:
+        a, _ = simulate_property(xy, ph, targets, "spherical", n_realisations=40, seed=seed_a)
+        b, _ = simulate_property(xy, total, targets, "spherical", n_realisations=40,
+                                 seed=seed_b)
+        return float(np.median([np.corrcoef(a[:, j], b[:, j])[0, 1]
+                                for j in range(targets.shape[0])]))
+
+    assert property_seed(11, 0) == 11
+    assert len({property_seed(11, k) for k in range(3)}) == 3
+    assert property_seed(11, 2) == property_seed(11, 2)
+    assert cell_correlation(11, 11) > 0.5
+    assert abs(cell_correlation(property_seed(11, 1), property_seed(11, 2))) < 0.2
