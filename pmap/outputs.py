@@ -433,6 +433,20 @@ def write_outputs(
                                 timestamp=stamp, crs=vector_crs)
         outputs[f"shapefile/{stem}_rate_zones.shp"] = (
             f"the same polygons as a Shapefile ({crs_word}, 10-character field names)")
+        lime_record = result.soil.get("lime", {}) if result.soil else {}
+        if "lime_zones" in result.layers and lime_record.get("classes"):
+            lime_frame = vectors.lime_zone_frame(
+                vectors.zone_polygons(result.layers["lime_zones"], grid),
+                {c["class"]: c for c in lime_record["classes"]}, grid.crs,
+                target_ph=lime_record["target_ph"], field=info.name, farm=info.farm)
+            vectors.write_geopackage(
+                tmp / f"{stem}_lime_zones.gpkg", lime_frame, layer="lime_zones",
+                timestamp=stamp, crs=vector_crs,
+                description=(f"pmap lime zones: lime to pH {lime_record['target_ph']:g}, "
+                             "lime_t_ha in t/ha, lime_t_ac in short tons per acre"))
+            outputs[f"{stem}_lime_zones.gpkg"] = (
+                f"lime-rate polygons (layer lime_zones, {crs_word}) with class, t/ha, t/acre, "
+                "area and total, beside the P rate zones")
         tables.write_zone_table_csv(tmp / f"{stem}_zones.csv", rows, units=result.rule.units)
         outputs[f"{stem}_zones.csv"] = "one line per rate polygon: class, area, soil test, rates"
         if result.config.output.taskdata:

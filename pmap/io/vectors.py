@@ -43,6 +43,7 @@ __all__ = [
     "coverage_polygons",
     "polygon_labels",
     "zone_frame",
+    "lime_zone_frame",
     "write_zone_polygons",
     "write_geopackage",
     "write_shapefile",
@@ -439,6 +440,48 @@ def zone_frame(patches: Sequence[tuple[BaseGeometry, int]], attributes: Attribut
     columns = list(ZONE_FIELDS) + (list(US_FIELDS) if units == "us" else [])
     return gpd.GeoDataFrame(records, columns=columns, geometry=[g for g, _ in patches],
                             crs=normalise_crs(crs))
+
+
+#: Columns of the lime-zone polygons (shapefile-safe names of at most 10 characters).
+LIME_ZONE_FIELDS: tuple[str, ...] = ("zone_id", "lime_class", "label", "lime_t_ha",
+                                     "lime_t_ac", "area_ha", "lime_tot_t", "target_ph",
+                                     "field", "farm")
+
+
+def lime_zone_frame(patches: Sequence[tuple[BaseGeometry, int]],
+                    classes: Mapping[int, Mapping[str, Any]], crs: str, *, target_ph: float,
+                    field: str | None = None, farm: str | None = None):
+    """Lime-rate polygons as a GeoDataFrame with the :data:`LIME_ZONE_FIELDS` columns.
+
+    Parameters
+    ----------
+    patches : sequence of (geometry, class_code)
+        From :func:`zone_polygons` on the lime-class raster (class 0 = no data, left out).
+    classes : mapping of int to mapping
+        Per class code: ``label``, ``rate_t_ha`` (t/ha) and ``rate_t_acre`` (short tons
+        per acre), as the run's lime record holds them.
+    crs : str
+        CRS of the geometries (projected, m).
+    target_ph : float
+        The pH the rates lime to (pH units), written on every polygon.
+    """
+    import geopandas as gpd
+
+    rows = []
+    for k, (geom, code) in enumerate(patches, start=1):
+        info = classes.get(int(code))
+        if info is None:
+            continue
+        area_ha = geom.area / 10_000.0
+        rate = float(info["rate_t_ha"])
+        rows.append({"zone_id": k, "lime_class": int(code), "label": str(info["label"]),
+                     "lime_t_ha": rate, "lime_t_ac": float(info["rate_t_acre"]),
+                     "area_ha": area_ha, "lime_tot_t": rate * area_ha,
+                     "target_ph": float(target_ph), "field": field, "farm": farm,
+                     "geometry": geom})
+    frame = gpd.GeoDataFrame(rows, columns=[*LIME_ZONE_FIELDS, "geometry"], geometry="geometry",
+                             crs=crs)
+    return frame
 
 
 def _iso_date(value: str | datetime | Any | None) -> str | None:

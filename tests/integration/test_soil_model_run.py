@@ -132,6 +132,25 @@ def test_lime_rates_follow_the_mehlich_buffer_formula(lab_run):
     assert (lab_run.layers["low_ph_flag"][inside] == (ph < 5.5)).all()
 
 
+def test_lime_zones_are_written_as_polygons_beside_the_rate_zones(lab_run):
+    import geopandas as gpd
+
+    (path,) = lab_run.out_dir.glob("*_lime_zones.gpkg")
+    frame = gpd.read_file(path, layer="lime_zones")
+    record = {c["class"]: c for c in lab_run.soil["lime"]["classes"]}
+    # the polygons tile the field and carry each class's rate and area
+    inside_ha = lab_run.grid.mask.sum() * lab_run.grid.cell_area_ha
+    assert frame.area.sum() / 10_000.0 == pytest.approx(inside_ha, rel=1e-9)
+    for code, group in frame.groupby("lime_class"):
+        assert group["area_ha"].sum() == pytest.approx(record[code]["area_ha"], rel=1e-6)
+        assert (group["lime_t_ha"] == record[code]["rate_t_ha"]).all()
+    # Source: NIST SP 811 (1 short ton = 907.18474 kg, 1 acre = 0.40468564224 ha)
+    np.testing.assert_allclose(frame["lime_t_ac"],
+                               frame["lime_t_ha"] * 0.40468564224 / 0.90718474, rtol=1e-12)
+    assert (frame["target_ph"] == lab_run.config.lime.target_ph).all()
+    assert frame.crs == lab_run.grid.crs
+
+
 def test_p_saturation_ratio_is_mapped_and_can_cap_rates(demo_inputs, coarse, tmp_path):
     table = pd.read_csv(demo_inputs["samples"])
     rng = np.random.default_rng(3)
