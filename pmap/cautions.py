@@ -11,9 +11,11 @@ CAUTIONS_SHORT = (
 
 CAUTIONS = (
     "CAUTION - these maps and rates are computed estimates for review by a qualified person. "
-    "Kriged values carry the uncertainty shown in the variance layers and are least reliable far "
-    "from samples and near the boundary. The availability and fixation layers come from a simplified "
-    "soil model whose defaults are not calibrated for your region. Phosphorus applied in excess of "
+    "Kriged values carry the uncertainty shown in the standard-error maps and variance layers and "
+    "are least reliable far from samples and near the boundary. The availability, fixation and lime "
+    "layers come from a simplified soil model; unless the maps and the summary say it was "
+    "calibrated to paired lab data, its defaults are starting values, not calibrations for your "
+    "region. Phosphorus applied in excess of "
     "crop need can run off to surface water; applications near water, on frozen or saturated soil, "
     "or on soils already high in P may be restricted or prohibited. Lime and fertilizer rates must "
     "be checked against local regulations, nutrient-management plans and the recommendations of the "

@@ -89,14 +89,19 @@ def cli(verbose: int, quiet: bool) -> None:
     _setup_logging(verbose, quiet)
 
 
+_MAPS_HELP = ("Review pictures: all (every map, the sheets and the report; default), "
+              "overview (the overview sheet and the report) or none (sets output.maps).")
+
+
 @cli.command()
 @click.argument("out", type=click.Path(path_type=Path, file_okay=False))
 @click.option("--overwrite", is_flag=True, help="Replace OUT if it exists and is not empty.")
-def demo(out: Path, overwrite: bool) -> None:
+@click.option("--maps", type=click.Choice(["all", "overview", "none"]), help=_MAPS_HELP)
+def demo(out: Path, overwrite: bool, maps: str | None) -> None:
     """Run the whole job on the bundled invented demo field and write the outputs into OUT."""
     from pmap.demo import run_demo
 
-    result = _run_safely(run_demo, out, overwrite=overwrite)
+    result = _run_safely(run_demo, out, overwrite=overwrite, maps=maps)
     _report(result, out)
 
 
@@ -120,10 +125,11 @@ def demo(out: Path, overwrite: bool) -> None:
               "(sets output.vector_crs; default the run's CRS).")
 @click.option("--units", type=click.Choice(["metric", "us"]),
               help="Units of the rate tables and attributes (sets rates.units).")
+@click.option("--maps", type=click.Choice(["all", "overview", "none"]), help=_MAPS_HELP)
 @click.option("--overwrite", is_flag=True, help="Replace OUT if it exists and is not empty.")
 def run(samples: Path, boundary: Path, out: Path, config_path: Path | None, crs: str | None,
         cell_size: float | None, feature: str | None, each_field: bool,
-        vector_crs: str | None, units: str | None, overwrite: bool) -> None:
+        vector_crs: str | None, units: str | None, maps: str | None, overwrite: bool) -> None:
     """Map one field: SAMPLES (CSV, GeoJSON, GeoPackage or Shapefile) inside --boundary."""
     from pmap.config import load_config
     from pmap.pipeline import run_each_feature, run_field
@@ -131,7 +137,7 @@ def run(samples: Path, boundary: Path, out: Path, config_path: Path | None, crs:
     config = _run_safely(load_config, config_path)
     for section, changes in (("grid", {"crs": crs, "cell_size_m": cell_size}),
                              ("field", {"boundary_feature": feature}),
-                             ("output", {"vector_crs": vector_crs}),
+                             ("output", {"vector_crs": vector_crs, "maps": maps}),
                              ("rates", {"units": units})):
         changes = {k: v for k, v in changes.items() if v is not None}
         if changes:

@@ -143,7 +143,27 @@ class OutputSettings:
                   "its grid file) for task controllers", "source": "ISO 11783-10"},
     )
 
+    maps: str = field(
+        default="all",
+        metadata={"unit": "", "doc": "which review pictures to draw: \"all\" (every layer's "
+                  "map, the variograms, the overview and diagnostics sheets and the HTML "
+                  "report), \"overview\" (the overview sheet and the report only) or \"none\" "
+                  "(no pictures and no report; GeoTIFFs, polygons and summary.json as always). "
+                  "The CLI's --maps sets it", "source": "common practice, no source"},
+    )
+    paper: str = field(
+        default="a4",
+        metadata={"unit": "", "doc": "paper of the overview and diagnostics sheets: \"a4\" "
+                  "(297 x 210 mm landscape) or \"letter\" (11 x 8.5 in landscape)",
+                  "source": "ISO 216 (A4); ANSI/ASME Y14.1 (Letter)"},
+    )
+
     def __post_init__(self) -> None:
+        if self.maps not in ("all", "overview", "none"):
+            raise ConfigError(f"output.maps must be \"all\", \"overview\" or \"none\", got "
+                              f"{self.maps!r}")
+        if self.paper not in ("a4", "letter"):
+            raise ConfigError(f"output.paper must be \"a4\" or \"letter\", got {self.paper!r}")
         if self.vector_crs != "working":
             try:
                 normalise_crs(self.vector_crs)

@@ -186,12 +186,14 @@ def write_demo_inputs(directory: str | Path) -> dict[str, Path]:
     return paths
 
 
-def run_demo(out_dir: str | Path, *, overwrite: bool = False):
+def run_demo(out_dir: str | Path, *, overwrite: bool = False, maps: str | None = None):
     """Run the whole job on the demo field and write every output into ``out_dir``.
 
     The inputs are written to a temporary folder that is removed afterwards, so
     summary.json and manifest.json record them as ``(bundled demo inputs) <name>`` beside
     their copies in ``out_dir/inputs/``, never as the vanished temporary paths.
+
+    ``maps`` sets ``output.maps`` ("all", "overview" or "none"; default the demo's config).
 
     Returns the :class:`pmap.pipeline.FieldResult`.
     """
@@ -202,6 +204,8 @@ def run_demo(out_dir: str | Path, *, overwrite: bool = False):
     with tempfile.TemporaryDirectory(prefix="pmap-demo-") as tmp:
         paths = write_demo_inputs(tmp)
         config = load_config(paths["config"])
+        if maps is not None:
+            config = config.replace("output", maps=maps)
         with inputs_recorded_as(DEMO_INPUTS_LABEL):
             result = run_field(
                 paths["samples"], paths["boundary"], out_dir, config, overwrite=overwrite,

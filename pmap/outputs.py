@@ -13,7 +13,6 @@ import shutil
 from collections.abc import Iterator
 from contextlib import contextmanager
 from contextvars import ContextVar
-from dataclasses import dataclass
 from datetime import date, datetime, timezone
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -25,172 +24,23 @@ from pmap.cautions import CAUTIONS, CAUTIONS_SHORT
 from pmap.io import isoxml, rasters, tables, vectors
 from pmap.io.manifest import file_record, write_manifest
 from pmap.io.publish import OutputTransaction, open_transaction
-from pmap.prescribe.prescription import NOT_SAMPLED
-from pmap.soil.environment import PSR_CLASS_LABELS
-from pmap.soil.lime import class_labels as lime_class_labels
+from pmap.layers import (
+    LAYERS,
+    LIME_COLOURS,
+    MODEL_LAYERS,
+    PRESCRIPTION_LAYERS,
+    LayerInfo,
+    hex_to_rgba,
+    layer_info,
+)
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
+from pmap.soil.lime import class_labels as lime_class_labels
 
 if TYPE_CHECKING:
     from pmap.pipeline import FieldInputs, FieldResult
 
 __all__ = ["LAYERS", "LayerInfo", "check_output_dir", "write_outputs",
            "inputs_recorded_as", "output_timestamp"]
-
-
-@dataclass(frozen=True)
-class LayerInfo:
-    """How one output layer is described, coloured and labelled."""
-
-    title: str
-    unit: str
-    cmap: str = "viridis"
-    classes: dict[int, str] | None = None
-    colours: dict[int, str] | None = None
-
-
-# Colour-blind-safe categorical colours (Okabe & Ito 2008 palette), chosen per layer.
-_ZONE_COLOURS = {1: "#D55E00", 2: "#E69F00", 3: "#009E73", 4: "#56B4E9", 5: "#0072B2"}
-_THREE_ZONE_COLOURS = {1: "#D55E00", 2: "#009E73", 3: "#0072B2"}
-_NOT_SAMPLED_COLOUR = "#BBBBBB"
-_MECHANISM_COLOURS = {1: "#D55E00", 2: "#0072B2", 3: "#CC79A7", 4: "#009E73"}
-_RISK_COLOURS = {1: "#F0E442", 2: "#E69F00", 3: "#882255"}
-_LIME_COLOURS = {1: "#DDDDDD", 2: "#56B4E9", 3: "#0072B2", 4: "#332288", 5: "#000000",
-                 6: "#000000", 7: "#000000"}
-
-#: Every layer pmap can write: name -> LayerInfo.  Kriged properties get a ``_variance``.
-LAYERS: dict[str, LayerInfo] = {
-    "ph": LayerInfo("Soil pH (kriged)", "pH units", "cividis"),
-    "total_p": LayerInfo("Total P (kriged)", "mg/kg"),
-    "stp": LayerInfo("Soil-test P (kriged)", "mg/kg"),
-    "caco3": LayerInfo("CaCO3 (kriged)", "%", "cividis"),
-    "clay": LayerInfo("Clay (kriged)", "%", "cividis"),
-    "base_saturation": LayerInfo("Base saturation (kriged)", "%", "cividis"),
-    "om": LayerInfo("Organic matter (kriged)", "%", "cividis"),
-    "ca": LayerInfo("Ca, Mehlich-3 (kriged)", "mg/kg", "cividis"),
-    "fe": LayerInfo("Fe, Mehlich-3 (kriged)", "mg/kg", "cividis"),
-    "al": LayerInfo("Al, Mehlich-3 (kriged)", "mg/kg", "cividis"),
-    "buffer_ph": LayerInfo("Buffer pH (kriged)", "pH units", "cividis"),
-    "available_p": LayerInfo("Plant-available P (model)", "mg/kg"),
-    "fe_al_p": LayerInfo("Fe/Al-bound P (model)", "mg/kg", "magma"),
-    "ca_p": LayerInfo("Ca-bound P (model)", "mg/kg", "magma"),
-    "occluded_p": LayerInfo("Occluded P (model)", "mg/kg", "magma"),
-    "organic_p": LayerInfo("Organic P (model)", "mg/kg", "magma"),
-    "available_p_sd": LayerInfo("Standard deviation of available P (model, from kriging)",
-                                "mg/kg", "magma"),
-    "available_p_deficiency_probability": LayerInfo(
-        "Probability available P is below the critical level (model)", "probability 0-1",
-        "cividis"),
-    "stp_equivalent": LayerInfo("Soil-test P equivalent (MODEL ESTIMATE)", "mg/kg"),
-    "fixation_risk": LayerInfo("Fixation risk of applied P", "index 0-1", "magma"),
-    "fixation_mechanism": LayerInfo(
-        "Fixation mechanism", "class", classes=MECHANISM_LABELS, colours=_MECHANISM_COLOURS),
-    "fixation_class": LayerInfo(
-        "Fixation risk class", "class", classes=RISK_CLASS_LABELS, colours=_RISK_COLOURS),
-    "stp_deficiency_probability": LayerInfo(
-        "Probability soil-test P is below the critical level", "probability 0-1", "cividis"),
-    "fixation_high_probability": LayerInfo(
-        "Probability of high fixation risk (model)", "probability 0-1",
-        "cividis"),
-    "low_ph_flag": LayerInfo("P rates on ground below the pH floor", "class",
-                             classes={0: "pH at or above the floor", 1: "pH below the floor"},
-                             colours={0: "#DDDDDD", 1: "#882255"}),
-    "lime_rate": LayerInfo("Lime rate to the target pH", "t/ha", "cividis"),
-    "lime_zones": LayerInfo("Lime-rate classes", "class"),
-    "liming_available_p_gain": LayerInfo("Available P gained if pH reached the target (model)",
-                                         "mg/kg", "viridis"),
-    "p_saturation_ratio": LayerInfo("P saturation ratio, Mehlich-3 (molar)", "ratio",
-                                    "magma"),
-    "p_saturation_class": LayerInfo("P saturation class", "class", classes=PSR_CLASS_LABELS,
-                                    colours=_RISK_COLOURS),
-    "zones": LayerInfo("Soil-test P zones", "class"),
-    "p2o5_rate": LayerInfo("P2O5 rate per cell", "kg P2O5/ha", "viridis"),
-    "p2o5_zone_rate": LayerInfo("P2O5 rate by zone (prescription)", "kg P2O5/ha", "viridis"),
-    "product_zone_rate": LayerInfo("Product rate by zone (prescription)", "kg product/ha",
-                                   "viridis"),
-}
-
-
-#: Layers that carry advice, so their maps carry the cautions.
-_PRESCRIPTION_LAYERS = ("zones", "p2o5_rate", "p2o5_zone_rate", "product_zone_rate",
-                        "stp_equivalent", "stp_deficiency_probability")
-#: Layers drawn with one legend entry per distinct value (a prescription has few rates).
-_DISCRETE_RATE_LAYERS = ("p2o5_zone_rate", "product_zone_rate")
-
-
-def layer_info(name: str, zone_labels: tuple[str, ...] | None = None) -> LayerInfo:
-    """Description of a layer, including ``<property>_variance`` layers.
-
-    ``zone_labels`` name the zone classes (the run's interpretation table); the zone
-    layer also holds code 255 for cells too far from every sample ("not sampled").
-    """
-    if name == "zones":
-        labels = tuple(zone_labels or ())
-        classes = {i + 1: label for i, label in enumerate(labels)}
-        if len(labels) == 3:
-            colours = dict(_THREE_ZONE_COLOURS)
-        elif len(labels) == 5:
-            colours = dict(_ZONE_COLOURS)
-        else:
-            colours = {k: "#{:02x}{:02x}{:02x}".format(*rgba[:3])
-                       for k, rgba in rasters.class_colours(list(classes)).items()}
-        classes[NOT_SAMPLED] = "not sampled (no rate)"
-        colours[NOT_SAMPLED] = _NOT_SAMPLED_COLOUR
-        return LayerInfo(LAYERS["zones"].title, "class", classes=classes, colours=colours)
-    if name.endswith("_variance"):
-        base = LAYERS[name[: -len("_variance")]]
-        unit = "pH units^2" if base.unit == "pH units" else f"({base.unit})^2"
-        return LayerInfo(base.title.replace("(kriged)", "kriging variance"), unit, "magma")
-    return LAYERS[name]
-
-
-def _discrete_rates(array: np.ndarray, unit: str) -> tuple[np.ndarray, dict[int, str]]:
-    """Code a zone-rate raster by its distinct rates, for a legend with one entry per rate."""
-    values = np.asarray(array, dtype=float)
-    rates = sorted({round(float(v), 6) for v in values[np.isfinite(values)]})
-    codes = np.zeros(values.shape, dtype=np.uint8)
-    for k, rate in enumerate(rates[:250], start=1):
-        codes[np.isclose(values, rate)] = k
-    return codes, {k: f"{rate:g} {unit}" for k, rate in enumerate(rates[:250], start=1)}
-
-
-def _model_text(interp: Any) -> str:
-    """One line describing a fitted variogram and its cross-validation, for plots."""
-    m, cv = interp.model, interp.cv
-    shape = f", shape {m.shape:.2f}" if m.shape is not None else ""
-    aniso = (f", anisotropy {m.ratio:.2f} at {m.angle:.0f} deg" if m.anisotropic else "")
-    hood = interp.neighbourhood
-    where = (f", {hood.neighbours} nearest samples" if hood is not None and hood.kind == "local"
-             else "")
-    return (f"{'log ' if interp.log else ''}{m.kind}: nugget {m.nugget:.3g}, partial sill "
-            f"{m.psill:.3g}, range {m.range:.0f} m{shape}{aniso}{where}"
-            f" | n = {cv.n}, LOO RMSE {cv.rmse:.3g}, MSDR {cv.msdr:.2f}")
-
-
-#: Most candidate rows printed under a variogram plot (all are in summary.json).
-_TABLE_ROWS = 12
-
-
-def _candidate_table(interp: Any) -> list[str]:
-    """Rows of every candidate's figures for the variogram plot, best RMSE first."""
-    rows = [c for c in interp.candidates if c.cv is not None]
-    if len(interp.candidates) < 2:
-        return []
-    rows.sort(key=lambda c: c.cv.rmse)
-    lines = [f"chosen: {interp.selection}",
-             f"  {'candidate':<58} {'LOO RMSE':>9} {'MSDR':>6}"]
-    for c in rows[:_TABLE_ROWS]:
-        mark = "*" if (c.model == interp.model and c.log == interp.log) else " "
-        lines.append(f"{mark} {c.label:<58} {c.cv.rmse:>9.4g} {c.cv.msdr:>6.2f}")
-    skipped = [c for c in interp.candidates if c.skipped]
-    more = len(rows) - _TABLE_ROWS
-    if more > 0 or skipped:
-        lines.append(f"  ({max(more, 0)} more and {len(skipped)} skipped: see summary.json)")
-    return lines
-
-
-def _hex_to_rgba(colour: str) -> tuple[int, int, int, int]:
-    colour = colour.lstrip("#")
-    return (int(colour[0:2], 16), int(colour[2:4], 16), int(colour[4:6], 16), 255)
 
 
 def check_output_dir(out_dir: Path, overwrite: bool, inputs: list[Path]) -> OutputTransaction:
@@ -308,12 +158,10 @@ def _provenance(result: FieldResult, name: str) -> dict[str, str]:
         tags["METHOD"] = ("lognormal ordinary kriging" if interp.log else "ordinary kriging")
         tags["VARIOGRAM"] = json.dumps(_json_safe(interp.model.as_dict()))
         tags["N_SAMPLES"] = str(interp.cv.n)
-    elif name in ("available_p", "fe_al_p", "ca_p", "occluded_p", "organic_p", "available_p_sd",
-                  "available_p_deficiency_probability", "fixation_risk",
-                  "fixation_mechanism", "fixation_class"):
+    elif name in MODEL_LAYERS:
         tags["METHOD"] = (f"pmap soil model v2 on kriged inputs, fixation model "
                           f"{result.config.fixation.model} (docs/soil-model.md)")
-    elif name in _PRESCRIPTION_LAYERS:
+    elif name in PRESCRIPTION_LAYERS:
         tags["METHOD"] = f"pmap rates v2; soil-test P: {result.stp_source['description']}"
         tags["BASIS"] = result.prescription["basis"]
         tags["INTERPRETATION"] = json.dumps(_json_safe(result.interpretation.as_dict()))
@@ -335,7 +183,8 @@ def write_outputs(
     the directory is checked here (``overwrite`` false).  A failed write raises
     :class:`~pmap.errors.OutputError` and leaves no output (an old one stays as it was).
     """
-    from pmap.report import maps
+    from pmap.report.field_pictures import draw_field_pictures
+    from pmap.report.html import REPORT_NAME, write_field_report
 
     out_dir = result.out_dir
     if transaction is None:
@@ -346,22 +195,15 @@ def write_outputs(
         outputs: dict[str, str] = {}
         grid = result.grid
         (tmp / "rasters").mkdir()
-        (tmp / "maps").mkdir()
-        samples_xy = inputs.samples.coords
-        subtitle = " | ".join(
-            s for s in (result.config.field.farm, f"sampled {result.config.field.sampling_date}"
-                        if result.config.field.sampling_date else "") if s
-        )
-        basis_note = _basis_note(result)
         for name, array in result.layers.items():
             info = layer_info(name, tuple(result.prescription["zone_labels"]))
             if name == "lime_zones":
                 labels = lime_class_labels(result.config.lime.zone_breaks_t_ha)
                 info = dataclasses.replace(
                     info, classes={i + 1: t for i, t in enumerate(labels)},
-                    colours={i + 1: _LIME_COLOURS.get(i + 1, "#000000")
+                    colours={i + 1: LIME_COLOURS.get(i + 1, "#000000")
                              for i in range(len(labels))})
-            colormap = ({k: _hex_to_rgba(v) for k, v in info.colours.items()}
+            colormap = ({k: hex_to_rgba(v) for k, v in info.colours.items()}
                         if info.colours else None)
             rasters.write_cog(
                 tmp / "rasters" / f"{name}.tif", array, grid,
@@ -369,46 +211,8 @@ def write_outputs(
                 class_labels=info.classes, colormap=colormap,
             )
             outputs[f"rasters/{name}.tif"] = f"{info.title} ({info.unit})"
-            shown, classes, colours = array, info.classes, info.colours
-            if name in _DISCRETE_RATE_LAYERS:
-                shown, classes = _discrete_rates(array, info.unit)
-                colours = None
-            limits = (0.0, 1.0) if name in ("stp_deficiency_probability",
-                                            "available_p_deficiency_probability",
-                                            "fixation_high_probability",
-                                            "fixation_risk") else (None, None)
-            maps.plot_layer(
-                tmp / "maps" / f"{name}.png", shown, grid,
-                title=f"{result.config.field.name}: {info.title}", unit=info.unit,
-                subtitle=subtitle, samples_xy=samples_xy, boundary=inputs.boundary,
-                classes=classes, colours=colours, cmap=info.cmap,
-                vmin=limits[0], vmax=limits[1],
-                footnote=(f"{basis_note} {CAUTIONS_SHORT}" if name in _PRESCRIPTION_LAYERS
-                          else ""),
-            )
-            outputs[f"maps/{name}.png"] = f"review map of {info.title}"
-        for name, interp in result.interpolations.items():
-            emp = interp.empirical
-            maps.plot_variogram(
-                tmp / "maps" / f"variogram_{name}.png", emp.lag, emp.gamma, emp.count,
-                interp.model, title=f"{result.config.field.name}: variogram of "
-                + ("log " if interp.log else "") + layer_info(name).title.replace(" (kriged)", ""),
-                unit=("log units" if interp.log else layer_info(name).unit),
-                subtitle=_model_text(interp),
-                candidates=[(c.label, c.model) if c.log == interp.log else (c.label, None)
-                            for c in interp.candidates
-                            if not (c.model == interp.model and c.log == interp.log)],
-                table=_candidate_table(interp),
-            )
-            outputs[f"maps/variogram_{name}.png"] = f"empirical and fitted variogram of {name}"
-        if result.calibration is not None:
-            from pmap.report.calibration_plot import plot_calibration
-
-            plot_calibration(result.calibration, tmp / "maps" / "calibration.png",
-                             method_label=str(inputs.samples.stp_method or "lab soil-test P"),
-                             title=f"{result.config.field.name}: soil model calibrated to the "
-                             "lab's soil-test P")
-            outputs["maps/calibration.png"] = "soil model against the lab's soil-test P"
+        pictures, _ = draw_field_pictures(result, inputs, tmp)
+        outputs.update(pictures)
 
         stem = tables.output_stem(result.config.field.name, result.config.field.farm,
                                   result.config.field.sampling_date)
@@ -469,12 +273,19 @@ def write_outputs(
                   for kind, path in given.items() if path is not None}
         outputs["inputs/"] = ("copies of the input files this run read: inputs/samples/, "
                               "inputs/boundary/ (with a Shapefile's sidecars), inputs/config/")
+        if result.config.output.maps != "none":
+            outputs[REPORT_NAME] = ("the field report: one self-contained HTML page with the "
+                                    "overview, every map, rates, diagnostics, parameters and "
+                                    "cautions")
         outputs["summary.json"] = "everything above in numbers, with the cautions"
         outputs["manifest.json"] = ("pmap version, configuration, warnings, and the SHA-256 "
                                     "and size of every input read and every file written")
         summary = _summary(result, inputs, sources, copied, outputs)
-        (tmp / "summary.json").write_text(
-            json.dumps(_json_safe(summary), indent=2) + "\n", encoding="utf-8")
+        recorded = _json_safe(summary)
+        (tmp / "summary.json").write_text(json.dumps(recorded, indent=2) + "\n",
+                                          encoding="utf-8")
+        if REPORT_NAME in outputs:
+            write_field_report(tmp, recorded)
         write_manifest(tmp, _json_safe({
             "pmap_version": __version__,
             "field": result.config.field.name,
@@ -501,20 +312,6 @@ def _rounded(obj: Any, decimals: int = 4) -> Any:
     if isinstance(obj, float) and np.isfinite(obj):
         return round(obj, decimals)
     return obj
-
-
-def _basis_note(result: Any) -> str:
-    """The map footnote's first sentence: what the rates rest on, and any flat-rate notice."""
-    basis = result.prescription["basis"]
-    text = (f"Rates rest on: {basis.upper()} ({result.stp_source['description']}); classes: "
-            f"{result.interpretation.region} {result.interpretation.method}, critical "
-            f"{result.interpretation.critical_ppm:g}, limit {result.interpretation.limit_ppm:g} "
-            "mg/kg.")
-    if result.prescription.get("single_rate_notice"):
-        text += " " + result.prescription["single_rate_notice"] + "."
-    if result.stp_source.get("risk_aware_rule"):
-        text += " " + result.stp_source["risk_aware_rule"] + "."
-    return text
 
 
 def _polygon_rows(result: Any) -> list[dict[str, Any]]:

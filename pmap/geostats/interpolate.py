@@ -445,6 +445,10 @@ class Interpolation:
     variogram_samples : int
         Samples the empirical variogram was computed from (a seeded subsample when more
         than ``kriging.variogram_max_samples``).
+    sample_coords, sample_values : numpy.ndarray, shape (n, 2) and (n,)
+        The samples kriged (m; property units), in the order of ``cv.errors``: the
+        observed values of the cross-validation are ``sample_values`` and the predicted
+        ones ``sample_values + cv.errors``.
     diagnostics : dict
         Figures behind the warnings: ``nugget_floor`` (squared kriged units),
         ``pure_nugget``, ``spacing_m`` (median nearest-neighbour distance, m),
@@ -469,6 +473,8 @@ class Interpolation:
     k_fold: CrossValidation | None = None
     selection: str = ""
     variogram_samples: int = 0
+    sample_coords: np.ndarray | None = field(default=None, compare=False, repr=False)
+    sample_values: np.ndarray | None = field(default=None, compare=False, repr=False)
 
     def kriged_moments(self) -> tuple[np.ndarray, np.ndarray]:
         """Mean and variance of the kriging distribution in the space that was kriged.
@@ -923,7 +929,8 @@ def _constant(
                    "trend_r2": 0.0, "trend_p": 1.0, "close_pairs": 0, "clipped_cells": clipped,
                    "n_dropped": 0, "n_large_errors": 0}
     return Interpolation(name, False, emp, VariogramModel(CONSTANT, 0.0, 0.0, cutoff), (), result,
-                         cv, kind="constant", notes=(note,), diagnostics=diagnostics)
+                         cv, kind="constant", notes=(note,), diagnostics=diagnostics,
+                         sample_coords=coords, sample_values=values)
 
 
 def interpolate(
@@ -1162,4 +1169,5 @@ def interpolate(
     return Interpolation(name, fit.log, emp, model, fit.candidates, result, cv, kind="kriged",
                          outliers=tuple(found), notes=tuple(notes), diagnostics=diagnostics,
                          neighbourhood=fit.neighbourhood, k_fold=fit.k_fold,
-                         selection=fit.selection, variogram_samples=fit.variogram_samples)
+                         selection=fit.selection, variogram_samples=fit.variogram_samples,
+                         sample_coords=coords, sample_values=values)

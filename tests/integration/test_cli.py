@@ -20,9 +20,14 @@ from pmap.demo import write_demo_inputs
 ROOT = Path(__file__).resolve().parents[2]
 
 
-def pmap_cli(*args, cwd=None):
+def pmap_cli(*args, cwd=None, maps="none"):
+    """Run the CLI.  ``run`` and ``demo`` get ``--maps none`` unless ``maps`` says otherwise:
+    most tests here are about inputs and files, and pictures only make a run slower."""
     env = dict(os.environ, MPLBACKEND="Agg")
-    return subprocess.run([sys.executable, "-m", "pmap", *map(str, args)], capture_output=True,
+    args = [str(a) for a in args]
+    if maps is not None and {"run", "demo"} & set(args) and "--maps" not in args:
+        args += ["--maps", maps]
+    return subprocess.run([sys.executable, "-m", "pmap", *args], capture_output=True,
                           text=True, cwd=cwd, env=env, timeout=600)
 
 
@@ -67,11 +72,13 @@ def test_run_on_own_files_and_refuse_to_overwrite(field, tmp_path):
     paths, _ = field
     out = tmp_path / "out"
     proc = pmap_cli("run", paths["samples"], "--boundary", paths["boundary"], "--out", out,
-                    "--config", paths["config"], "--cell-size", 10)
+                    "--config", paths["config"], "--cell-size", 10, maps=None)
     assert proc.returncode == 0, proc.stderr
     assert "CAUTION" in proc.stderr
     summary = json.loads((out / "summary.json").read_text())
     assert summary["grid"]["cell_size_m"] == 10
+    for name in ("report.html", "overview.png", "overview.pdf", "maps/p2o5_zone_rate.png"):
+        assert (out / name).is_file() and name in summary["outputs"], name
     before = (out / "summary.json").read_bytes()
 
     again = pmap_cli("run", paths["samples"], "--boundary", paths["boundary"], "--out", out)
@@ -80,9 +87,14 @@ def test_run_on_own_files_and_refuse_to_overwrite(field, tmp_path):
     assert (out / "summary.json").read_bytes() == before, "existing output was touched"
 
     forced = pmap_cli("run", paths["samples"], "--boundary", paths["boundary"], "--out", out,
-                      "--overwrite")
+                      "--overwrite", "--maps", "overview")
     assert forced.returncode == 0, forced.stderr
-    assert json.loads((out / "summary.json").read_text())["grid"]["cell_size_m"] == 5
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["grid"]["cell_size_m"] == 5
+    # --maps overview: the overview sheet and the report, no per-layer maps
+    assert (out / "overview.pdf").is_file() and (out / "report.html").is_file()
+    assert not (out / "maps").exists() and not (out / "diagnostics").exists()
+    assert summary["config"]["output"]["maps"] == "overview"
 
     # A failing run with --overwrite leaves the previous complete output as it was.
     kept = (out / "summary.json").read_bytes()

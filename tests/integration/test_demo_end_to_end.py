@@ -27,15 +27,19 @@ def test_every_output_exists(demo_run):
     _result, out = demo_run
     for name in CONTINUOUS + CLASSES:
         assert (out / "rasters" / f"{name}.tif").is_file(), name
-        assert (out / "maps" / f"{name}.png").stat().st_size > 20_000, name
+        picture = name.replace("_variance", "_std_error")  # the map shows the standard error
+        assert (out / "maps" / f"{picture}.png").stat().st_size > 20_000, name
+        assert not (out / "maps" / f"{name}_variance.png").exists()
     for name in ("ph", "total_p", "stp"):
         assert (out / "maps" / f"variogram_{name}.png").is_file()
+        assert (out / "diagnostics" / f"diagnostics_{name}.png").is_file()
     stem = "Harrow-Creek-Farm-invented-demo_Long-Meadow_2026-10-14"
     for name in (f"{stem}_rate_zones.gpkg", f"{stem}_rate_zones.geojson",
                  f"shapefile/{stem}_rate_zones.shp", f"{stem}_zones.csv", "summary.json",
                  "TASKDATA/TASKDATA.XML", "TASKDATA/GRD00001.BIN",
                  "inputs/samples/samples.csv", "inputs/boundary/boundary.geojson",
-                 "inputs/config/field.toml", "manifest.json"):
+                 "inputs/config/field.toml", "manifest.json", "overview.png", "overview.pdf",
+                 "diagnostics.pdf", "report.html"):
         assert (out / name).is_file(), name
     assert not list(out.parent.glob(".*partial*")), "staging directory left behind"
 

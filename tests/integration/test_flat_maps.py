@@ -37,7 +37,7 @@ def slip_and_no_carbonate(demo_inputs, tmp_path_factory):
     table["caco3"] = 0.0
     samples = tmp / "samples.csv"
     table.to_csv(samples, index=False)
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0).replace("output", maps="none")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         result = pmap.run_field(samples, demo_inputs["boundary"], tmp / "out", config)
@@ -137,7 +137,7 @@ def test_ten_resamples_one_cm_apart_are_named():
 
 
 def test_only_essential_properties_stop_the_run(demo_inputs):
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=50.0)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=50.0).replace("output", maps="none")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         inputs = prepare_inputs(demo_inputs["samples"], demo_inputs["boundary"], config)

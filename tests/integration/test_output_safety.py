@@ -24,6 +24,8 @@ from pmap.io.publish import lock_path, open_transaction, verify_output
 
 
 def pmap_cli(*args, wait=True):
+    """Run the CLI; the runs here pass ``--maps none``: these tests are about the files' safety,
+    and pictures only make a run slower."""
     env = dict(os.environ, MPLBACKEND="Agg")
     cmd = [sys.executable, "-m", "pmap", *map(str, args)]
     if not wait:
@@ -66,10 +68,10 @@ def old_output(demo_run, tmp_path):
 
 def test_two_runs_into_one_directory_the_second_is_refused(tmp_path):
     out = tmp_path / "out"
-    first = pmap_cli("demo", out, wait=False)
+    first = pmap_cli("demo", out, "--maps", "none", wait=False)
     wait_for(lambda: lock_path(out).exists(), first, "the first run took the lock")
     time.sleep(0.3)  # the lock file is made a moment before it is locked
-    second = pmap_cli("demo", out, "--overwrite")
+    second = pmap_cli("demo", out, "--overwrite", "--maps", "none")
     assert second.returncode == 4, second.stderr
     assert "another pmap run" in one_error(second.stderr)
     stdout, stderr = first.communicate(timeout=600)
@@ -80,7 +82,7 @@ def test_two_runs_into_one_directory_the_second_is_refused(tmp_path):
 
 def test_a_directory_that_appears_during_a_run_is_left_alone(tmp_path):
     out = tmp_path / "out"
-    run = pmap_cli("demo", out, wait=False)
+    run = pmap_cli("demo", out, "--maps", "none", wait=False)
     wait_for(lambda: lock_path(out).exists(), run, "the run took the lock")
     out.mkdir()
     (out / "notes.txt").write_text("someone else's work")
@@ -94,7 +96,7 @@ def test_a_directory_that_appears_during_a_run_is_left_alone(tmp_path):
 
 def test_user_files_beside_a_pmap_output_survive_overwrite(old_output, tmp_path):
     (old_output / "notes.txt").write_text("agronomist's notes")
-    proc = pmap_cli("demo", old_output, "--overwrite")
+    proc = pmap_cli("demo", old_output, "--overwrite", "--maps", "none")
     assert proc.returncode == 4, proc.stderr
     error = one_error(proc.stderr)
     assert "notes.txt (not written by pmap)" in error and "move those files out" in error
@@ -105,7 +107,7 @@ def test_user_files_beside_a_pmap_output_survive_overwrite(old_output, tmp_path)
     mine.mkdir()
     shutil.copy2(old_output / "summary.json", mine / "summary.json")
     (mine / "notes.txt").write_text("mine")
-    proc = pmap_cli("demo", mine, "--overwrite")
+    proc = pmap_cli("demo", mine, "--overwrite", "--maps", "none")
     assert proc.returncode == 4 and "no pmap manifest.json" in one_error(proc.stderr)
     assert sorted(p.name for p in mine.iterdir()) == ["notes.txt", "summary.json"]
 
@@ -114,7 +116,7 @@ def test_a_linked_output_directory_keeps_its_link(old_output, tmp_path):
     link = tmp_path / "latest"
     link.symlink_to(old_output)
     before = old_output.stat().st_ino
-    proc = pmap_cli("-q", "demo", link, "--overwrite")
+    proc = pmap_cli("-q", "demo", link, "--overwrite", "--maps", "none")
     assert proc.returncode == 0, proc.stderr
     assert link.is_symlink() and os.readlink(link) == str(old_output)
     assert old_output.stat().st_ino != before, "a new directory was published at the target"
@@ -125,7 +127,7 @@ def test_a_linked_output_directory_keeps_its_link(old_output, tmp_path):
 def test_a_run_killed_while_writing_keeps_the_old_output_and_the_next_run_recovers(
         old_output, tmp_path):
     before = (old_output / "manifest.json").read_bytes()
-    run = pmap_cli("demo", old_output, "--overwrite", wait=False)
+    run = pmap_cli("demo", old_output, "--overwrite", wait=False)  # pictures: a long write
 
     def writing():
         return any(any(p.iterdir()) for p in tmp_path.glob(".out.partial-*"))
@@ -136,7 +138,7 @@ def test_a_run_killed_while_writing_keeps_the_old_output_and_the_next_run_recove
     assert verify_output(old_output).replaceable, "the old output is whole"
     assert (old_output / "manifest.json").read_bytes() == before
     assert any(name.startswith(".out.partial-") for name in hidden(tmp_path))
-    again = pmap_cli("demo", old_output, "--overwrite")
+    again = pmap_cli("demo", old_output, "--overwrite", "--maps", "none")
     assert again.returncode == 0, again.stderr
     assert "removed 1 folder(s) left by interrupted runs" in again.stderr
     assert hidden(tmp_path) == []
@@ -169,7 +171,7 @@ def small_disk(tmp_path):
 def test_a_full_disk_is_an_output_error_with_nothing_left(small_disk, demo_run):
     _, demo_out = demo_run
     disk = small_disk("small", 2 << 20)  # the demo writes about 4 MB
-    proc = pmap_cli("demo", disk / "out")
+    proc = pmap_cli("demo", disk / "out", "--maps", "none")
     assert proc.returncode == 4, proc.stderr
     error = one_error(proc.stderr)
     assert "no space left on device" in error and str(disk / "out") in error
@@ -178,7 +180,7 @@ def test_a_full_disk_is_an_output_error_with_nothing_left(small_disk, demo_run):
     size = sum(p.stat().st_size for p in demo_out.rglob("*") if p.is_file())
     disk = small_disk("full", size + (1 << 20))  # room for the old output and a bit
     shutil.copytree(demo_out, disk / "out")
-    proc = pmap_cli("demo", disk / "out", "--overwrite")
+    proc = pmap_cli("demo", disk / "out", "--overwrite", "--maps", "none")
     assert proc.returncode == 4, proc.stderr
     assert "no space left on device" in one_error(proc.stderr)
     assert verify_output(disk / "out").replaceable, "the old output is whole"

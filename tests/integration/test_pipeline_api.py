@@ -36,7 +36,7 @@ def test_without_soil_test_p_rates_come_from_the_flagged_model_estimate(demo_inp
     table = pd.read_csv(demo_inputs["samples"]).drop(columns=["mehlich3_p"])
     samples = tmp_path / "no_stp.csv"
     table.to_csv(samples, index=False)
-    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace(
+    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace("output", maps="none").replace(
         "rates", allow_uncalibrated_model=True)
     with pytest.warns(pmap.PmapWarning, match="MODEL ESTIMATE"):
         result = pmap.run_field(samples, demo_inputs["boundary"], tmp_path / "out", config)
@@ -73,7 +73,7 @@ def test_without_soil_test_p_rates_come_from_the_flagged_model_estimate(demo_inp
 def test_zone_rate_raster_matches_the_polygons(demo_inputs, tmp_path):
     import geopandas as gpd
 
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0).replace("output", maps="none")
     result = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out", config)
     zones = gpd.read_file(_one(tmp_path / "out", "*_rate_zones.gpkg"), layer="rate_zones")
     painted = result.layers["p2o5_zone_rate"]
@@ -109,7 +109,7 @@ def _bray_samples(demo_inputs, tmp_path):
 
 def test_bray_samples_use_the_bray_rule_by_default(demo_inputs, tmp_path):
     samples = _bray_samples(demo_inputs, tmp_path)
-    config = pmap.load_config().replace("grid", cell_size_m=20.0)
+    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace("output", maps="none")
     result = _run(samples, demo_inputs["boundary"], tmp_path / "out", config)
     assert result.stp_source["method"] == "bray1"
     # Source: Tri-State 1995 (E-2567), Bray P1 critical level 15 ppm for corn and soybean
@@ -121,7 +121,7 @@ def test_bray_samples_use_the_bray_rule_by_default(demo_inputs, tmp_path):
 
 def test_a_rule_for_another_method_converts_the_soil_test_first(demo_inputs, tmp_path):
     samples = _bray_samples(demo_inputs, tmp_path)
-    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace(
+    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace("output", maps="none").replace(
         "rates", soil_test_method="mehlich3_icp")
     with pytest.warns(pmap.PmapWarning, match="converted"):
         result = pmap.run_field(samples, demo_inputs["boundary"], tmp_path / "out", config)
@@ -143,7 +143,7 @@ def test_olsen_samples_need_an_olsen_rule(demo_inputs, tmp_path):
     samples = tmp_path / "olsen.csv"
     table.rename(columns={"mehlich3_p": "olsen_p"}).assign(
         olsen_p=lambda t: (t["olsen_p"] / 2).round(1)).to_csv(samples, index=False)
-    config = pmap.load_config().replace("grid", cell_size_m=20.0)
+    config = pmap.load_config().replace("grid", cell_size_m=20.0).replace("output", maps="none")
     with pytest.raises(pmap.ConfigError, match="no published tri-state interpretation of olsen"):
         _run(samples, demo_inputs["boundary"], tmp_path / "out", config)
     with pytest.raises(pmap.ConfigError, match="does not convert Olsen"):
@@ -160,9 +160,10 @@ def test_a_failure_while_writing_leaves_no_output_and_keeps_the_old_one(demo_inp
     from pmap.report import maps
 
     out = tmp_path / "out"
-    config = pmap.load_config().replace("grid", cell_size_m=25.0)
+    config = pmap.load_config().replace("grid", cell_size_m=25.0).replace("output", maps="none")
     _run(demo_inputs["samples"], demo_inputs["boundary"], out, config)
     before = (out / "summary.json").read_bytes()
+    config = config.replace("output", maps="all")  # the failure is in drawing a map
     real_plot = maps.plot_layer
     calls = {"n": 0}
 
@@ -189,7 +190,7 @@ def test_a_failure_while_writing_leaves_no_output_and_keeps_the_old_one(demo_inp
 
 def test_cluster_zones_carry_the_users_rate_table(demo_inputs, tmp_path):
     # Zones by fuzzy c-means of soil-test P and pH; the config's per-zone table sets the rates.
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0).replace(
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0).replace("output", maps="none").replace(
         "clusters", method="fuzzy_cmeans", layers=("stp", "ph"), n_zones=3,
         rates_kg_ha=(120.0, 90.0, 60.0))
     result = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out", config)
@@ -210,7 +211,7 @@ def test_risk_aware_rule_is_labelled_and_applies_p_more_readily(demo_inputs, tmp
     # Source: definition of a quantile; at q = 0.5 the normal kriging distribution's median is
     # the estimate, so the risk-aware rule then gives the plain rule's rates (soil-test P
     # kriged on its own scale here: a lognormal median lies below the mean).
-    config = (pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0)
+    config = (pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=20.0).replace("output", maps="none")
               .replace("kriging", log_transform="never"))
     plain = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "a", config)
     median = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "b",
@@ -242,7 +243,7 @@ def test_each_feature_runs_as_its_own_field(demo_inputs, tmp_path):
                             geometry=list(field.geometry) + list(far.geometry), crs=field.crs)
     path = tmp_path / "farm.geojson"
     both.to_file(path)
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=25.0)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=25.0).replace("output", maps="none")
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         results = pmap.pipeline.run_each_feature(demo_inputs["samples"], path, tmp_path / "out",
@@ -257,7 +258,7 @@ def test_simulated_probabilities_agree_with_the_kriging_distribution(demo_inputs
     # common practice, no source: with a Gaussian-like soil test, the share of conditional
     # simulations below the critical level approaches the kriging distribution's probability
     # (up to the normal-score transform and about 0.05 of Monte-Carlo error at 100 runs).
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=40.0)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=40.0).replace("output", maps="none")
     by_kriging = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "k", config)
     simulated = config.replace("kriging", probability="simulation", realisations=100)
     by_sim = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "s", simulated)
@@ -278,7 +279,7 @@ def test_simulated_probabilities_agree_with_the_kriging_distribution(demo_inputs
     assert "sequential Gaussian simulations" in by_sim.stp_source["probability_basis"]
     with pytest.raises(pmap.ConfigError, match="kriging.realisations"):
         _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "x",
-             simulated.replace("grid", cell_size_m=2.0).replace("kriging", realisations=5000))
+             simulated.replace("grid", cell_size_m=2.0).replace("output", maps="none").replace("kriging", realisations=5000))
 
 
 def test_a_covariate_raster_is_used_for_regression_kriging_when_it_pays(demo_inputs, tmp_path):
@@ -289,7 +290,7 @@ def test_a_covariate_raster_is_used_for_regression_kriging_when_it_pays(demo_inp
 
     from pmap.demo import DEMO_CRS, truth
 
-    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=40.0)
+    config = pmap.load_config(demo_inputs["config"]).replace("grid", cell_size_m=40.0).replace("output", maps="none")
     plain = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "a", config)
     x0, y0, x1, y1 = plain.grid.bounds
     cell = 10.0

@@ -154,7 +154,8 @@ def test_inputs_sharing_a_name_with_brackets_are_all_copied(demo_run, tmp_path):
     boundary.with_suffix(".prj").rename(boundary.with_suffix(".PRJ"))
     (boundary.parent / "North [2026].csv").write_text("not a sidecar\n")
     (boundary.parent / "North 2.dbf").write_text("what a glob of the name would match\n")
-    config = pmap.load_config(fresh["config"]).replace("grid", cell_size_m=25.0)
+    config = pmap.load_config(fresh["config"]).replace("grid", cell_size_m=25.0).replace(
+        "output", maps="none")
     out = tmp_path / "out"
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -23,7 +23,7 @@ def demo_inputs(tmp_path_factory):
 
 @pytest.fixture(scope="module")
 def coarse():
-    return pmap.load_config().replace("grid", cell_size_m=20.0)
+    return pmap.load_config().replace("grid", cell_size_m=20.0).replace("output", maps="none")
 
 
 def _run(samples, boundary, out, config):
@@ -35,7 +35,7 @@ def _run(samples, boundary, out, config):
 @pytest.fixture(scope="module")
 def lab_run(demo_inputs, coarse, tmp_path_factory):
     return _run(demo_inputs["samples"], demo_inputs["boundary"],
-                tmp_path_factory.mktemp("lab") / "out", coarse)
+                tmp_path_factory.mktemp("lab") / "out", coarse.replace("output", maps="all"))
 
 
 @pytest.fixture(scope="module")

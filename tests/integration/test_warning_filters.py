@@ -23,7 +23,7 @@ def far_sample_inputs(tmp_path_factory):
     far["sample_id"] = "FAR-1"
     far["latitude"] = far["latitude"] + 0.05
     pd.concat([table, far]).to_csv(paths["samples"], index=False)
-    config = load_config(paths["config"]).replace("grid", cell_size_m=20.0)
+    config = load_config(paths["config"]).replace("grid", cell_size_m=20.0).replace("output", maps="none")
     return paths, config
 
 
