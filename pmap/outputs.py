@@ -37,7 +37,7 @@ from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
 from pmap.soil.lime import class_labels as lime_class_labels
 
 if TYPE_CHECKING:
-    from pmap.pipeline import FieldInputs, FieldResult
+    from pmap.results import FieldInputs, FieldResult
 
 __all__ = ["LAYERS", "LayerInfo", "check_output_dir", "write_outputs",
            "inputs_recorded_as", "output_timestamp"]
@@ -176,12 +176,20 @@ def write_outputs(
     boundary_path: Path,
     config_path: Path | None,
     transaction: OutputTransaction | None = None,
-) -> None:
+) -> tuple[dict[str, Any], dict[str, str]]:
     """Write every output of ``result`` into ``result.out_dir`` atomically.
 
     ``transaction`` is the one :func:`check_output_dir` returned for the run; without it
     the directory is checked here (``overwrite`` false).  A failed write raises
     :class:`~pmap.errors.OutputError` and leaves no output (an old one stays as it was).
+    ``result`` is only read.
+
+    Returns
+    -------
+    summary : dict
+        What ``summary.json`` holds (before JSON conversion).
+    outputs : dict of str to str
+        Relative path -> description of every output written.
     """
     from pmap.report.field_pictures import draw_field_pictures
     from pmap.report.html import REPORT_NAME, write_field_report
@@ -295,12 +303,11 @@ def write_outputs(
                        for kind, records in copied.items()},
             "warnings": list(result.warnings),
         }))
-        result.summary = summary
-        result.outputs = outputs
         transaction.publish()
     except BaseException as exc:
         transaction.fail(exc)  # removes the staging directory; a failed write -> OutputError
         raise
+    return summary, outputs
 
 
 def _rounded(obj: Any, decimals: int = 4) -> Any:

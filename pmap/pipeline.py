@@ -15,7 +15,6 @@ import dataclasses
 import logging
 import re
 import warnings
-from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -36,6 +35,7 @@ from pmap.prescribe.clustering import cluster_zones, zone_means, zone_rates
 from pmap.prescribe.interpretation import InterpretationTable
 from pmap.prescribe.patches import clean_zones, min_cells_for_area, min_width_cells
 from pmap.prescribe.rates import RateRule, resolve_interpretation
+from pmap.results import FieldInputs, FieldResult
 from pmap.soil.availability import SoilPools
 from pmap.soil.conversions import convert_soil_test
 from pmap.soil.model import SoilInputs, recent_p_mg_kg, soil_model
@@ -57,63 +57,6 @@ KRIGED_PROPERTIES: tuple[str, ...] = (
 #: Any other property that cannot be mapped is left out with a warning; a constant one is
 #: mapped as that constant (pmap.geostats.interpolate).
 _ESSENTIAL = ("ph", "total_p", "stp")
-
-
-@dataclass(frozen=True)
-class FieldInputs:
-    """Checked inputs of one field, all in the run's projected CRS.
-
-    ``notes`` are sentences for the record (how the working CRS was chosen, the field's
-    area in it and on the ellipsoid, then the samples' own notes).  ``crs_choice`` is the
-    working-CRS record of :func:`pmap.io.crs.choose_working_crs` (``requested``, ``used``,
-    ``reason``, ``scale_error``, ``requested_scale_error``, ``max_scale_error``) plus
-    ``areas`` from :func:`pmap.io.boundary.check_field_area` (``working_crs_ha``,
-    ``geodesic_ha``, ``difference``).
-    """
-
-    samples: SampleTable
-    boundary: Any  # shapely (Multi)Polygon in grid.crs
-    grid: GridSpec
-    n_read: int
-    dropped_outside: tuple[str, ...]
-    notes: tuple[str, ...] = ()
-    crs_choice: dict[str, Any] = field(default_factory=dict)
-
-
-@dataclass
-class FieldResult:
-    """What one field's run produced; arrays are 2-D on ``grid`` with NaN outside the field.
-
-    ``patches`` are the rate polygons' records (:class:`pmap.prescribe.prescription.Patch`,
-    zone ids 1..n, areas from the polygons), ``polygons`` their geometries (zone id ->
-    shapely geometry in ``grid.crs``, tiling the boundary), ``patch_labels`` the zone id of
-    every cell, ``class_table`` and ``totals`` derived from ``patches`` only.
-    """
-
-    out_dir: Path
-    grid: GridSpec
-    config: FieldConfig
-    interpolations: dict[str, Interpolation]
-    layers: dict[str, np.ndarray]
-    class_table: list[dict[str, Any]]
-    patches: list[rx.Patch]
-    polygons: dict[int, Any]
-    patch_labels: np.ndarray
-    totals: dict[str, Any]
-    stp_source: dict[str, Any]
-    rule: RateRule
-    interpretation: InterpretationTable
-    prescription: dict[str, Any]
-    summary: dict[str, Any] = field(repr=False)
-    soil: dict[str, Any] = field(default_factory=dict)
-    calibration: Any = None
-    outputs: dict[str, str] = field(default_factory=dict, repr=False)
-    warnings: list[str] = field(default_factory=list)
-
-    @property
-    def zone_table(self) -> list[dict[str, Any]]:
-        """The per-polygon table (one row per rate polygon), as the CSV holds it."""
-        return [p.as_dict() for p in self.patches]
 
 
 def prepare_inputs(
@@ -294,12 +237,12 @@ def run_field(
     except BaseException:
         transaction.close()
         raise
-    result.warnings = [str(w.message) for w in caught if issubclass(w.category, PmapWarning)]
-
-    write_outputs(result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
-                  config_path=Path(config_path) if config_path else None,
-                  transaction=transaction)  # publishes under the lock taken by the check
-    return result
+    result = dataclasses.replace(
+        result, warnings=[str(w.message) for w in caught if issubclass(w.category, PmapWarning)])
+    summary, outputs = write_outputs(  # publishes under the lock taken by the check
+        result, inputs, samples_path=Path(samples), boundary_path=Path(boundary),
+        config_path=Path(config_path) if config_path else None, transaction=transaction)
+    return dataclasses.replace(result, summary=summary, outputs=outputs)
 
 
 def run_each_feature(

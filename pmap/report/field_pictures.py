@@ -41,7 +41,7 @@ from pmap.prescribe.prescription import BASIS_MEASURED
 from pmap.soil.lime import class_labels as lime_class_labels
 
 if TYPE_CHECKING:
-    from pmap.pipeline import FieldInputs, FieldResult
+    from pmap.results import FieldInputs, FieldResult
 
 __all__ = ["METHOD_NAMES", "OVERVIEW_PNG", "OVERVIEW_PDF", "DIAGNOSTICS_PDF",
            "draw_field_pictures", "picture_layers", "model_basis", "rates_basis", "map_kwargs",

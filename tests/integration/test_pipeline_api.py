@@ -311,3 +311,25 @@ def test_a_covariate_raster_is_used_for_regression_kriging_when_it_pays(demo_inp
     assert np.isnan(interp.result.lagrange).all()
     summary = interp.as_dict()
     assert [c["drift"] for c in summary["candidates"] if c["chosen"]] == ["truth"]
+
+
+def test_write_outputs_reads_the_result_and_returns_what_it_wrote(demo_inputs, tmp_path):
+    import dataclasses
+
+    from pmap.outputs import write_outputs
+    from pmap.pipeline import prepare_inputs
+
+    config = pmap.load_config().replace("grid", cell_size_m=40.0).replace("output", maps="none")
+    result = _run(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "a", config)
+    assert result.summary["outputs"] == result.outputs and "summary.json" in result.outputs
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        inputs = prepare_inputs(demo_inputs["samples"], demo_inputs["boundary"], config)
+    bare = dataclasses.replace(result, out_dir=tmp_path / "b", summary={}, outputs={})
+    summary, outputs = write_outputs(bare, inputs, samples_path=demo_inputs["samples"],
+                                     boundary_path=demo_inputs["boundary"], config_path=None)
+    assert bare.summary == {} and bare.outputs == {}, "the result it was given is unchanged"
+    assert outputs == result.outputs
+    assert summary["totals"] == result.summary["totals"]
+    written = json.loads((tmp_path / "b" / "summary.json").read_text())
+    assert written["outputs"] == outputs

@@ -245,4 +245,3 @@ def test_demo_report_renders_in_chromium(demo_run, tmp_path):
     assert broken == []
     assert all(img["src"].startswith("data:image/png;base64,") for img in images)
     assert screenshot.read_bytes().startswith(b"\x89PNG\r\n\x1a\n")
-    assert elapsed < 30

@@ -68,3 +68,26 @@ def test_numerics_import_no_io_plotting_or_cli(module):
 def test_checker_sees_a_leak():
     # The check above must be able to fail: the pipeline does import the I/O edges.
     assert "pmap.io" in _leaked("pmap.pipeline")
+
+
+def _loaded(module: str, names: list[str]) -> list[str]:
+    code = (
+        "import sys, importlib\n"
+        f"importlib.import_module({module!r})\n"
+        f"print(','.join(m for m in {names!r} if m in sys.modules))\n"
+    )
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    return [m for m in out.stdout.strip().split(",") if m]
+
+
+@pytest.mark.parametrize("module", ["pmap.results", "pmap.outputs", "pmap.layers",
+                                    "pmap.report.field_pictures", "pmap.report.html"])
+def test_the_writers_do_not_import_the_pipeline(module):
+    # The pipeline calls the writers; the writers read FieldInputs/FieldResult from
+    # pmap.results, so the two never import each other.
+    assert _loaded(module, ["pmap.pipeline"]) == []
+
+
+def test_the_pipeline_imports_the_writers():
+    # The check above can fail: the pipeline does import the output writer.
+    assert _loaded("pmap.pipeline", ["pmap.outputs"]) == ["pmap.outputs"]
