@@ -239,6 +239,70 @@ def calibrate(samples: Path, out: Path, config_path: Path | None, crs: str | Non
         click.echo(f"  held {name}: {reason}")
 
 
+@cli.command()
+@click.argument("fields", type=click.Path(path_type=Path))
+@click.option("--out", "-o", required=True, type=click.Path(path_type=Path, file_okay=False),
+              help="Batch output directory: one folder per field, batch_summary.csv/.gpkg, "
+              "index.html, and .batch/ (generated configs, logs).")
+@click.option("--workers", "-j", type=click.IntRange(min=1),
+              help="Local worker processes, one field each (default: the number of CPUs).")
+@click.option("--scheduler", help="Run on a Dask cluster: its scheduler address, e.g. "
+              "tcp://10.0.0.5:8786.")
+@click.option("--scheduler-file", type=click.Path(path_type=Path, dir_okay=False),
+              help="Run on a Dask cluster found through its scheduler file.")
+@click.option("--dry-run", is_flag=True,
+              help="List each field as new, changed (what changed) or done; write nothing.")
+@click.option("--maps", type=click.Choice(["all", "overview", "none"]),
+              help="Review pictures of every field (sets output.maps above every file).")
+def batch(fields: Path, out: Path, workers: int | None, scheduler: str | None,
+          scheduler_file: Path | None, dry_run: bool, maps: str | None) -> None:
+    """Map many fields: FIELDS is a folder of field folders or a CSV/TOML table of fields.
+
+    A field folder holds samples.*, boundary.* and optionally field.toml; batch.toml beside
+    them holds the defaults (see docs/batch.md).  Fields whose previous output matches
+    their inputs and configuration are skipped; a failing field is recorded and the
+    others go on.
+
+    Exit codes: 0 every field done or skipped; 1 at least one field failed (see
+    batch_summary.csv; with --dry-run: a field cannot run); 2 bad command line, batch.toml
+    or table; 3 FIELDS missing or holding no field; 4 another batch holds --out;
+    130/143 stopped by SIGINT/SIGTERM (fields not finished are left unpublished).
+    """
+    from pmap.batch import FieldFormatter, run_batch
+
+    if scheduler and scheduler_file:
+        raise click.UsageError("--scheduler and --scheduler-file exclude each other")
+    if workers is not None and (scheduler or scheduler_file):
+        raise click.UsageError("--workers sets local processes; on a Dask cluster its "
+                               "workers run the fields")
+    for handler in logging.getLogger("pmap").handlers:  # pmap[<field>]: ... on every line
+        handler.setFormatter(FieldFormatter())
+    quiet = click.get_current_context().find_root().params.get("quiet")
+    result = _run_safely(run_batch, fields, out, workers=workers, scheduler=scheduler,
+                         scheduler_file=scheduler_file, dry_run=dry_run, maps=maps,
+                         progress=not quiet)
+    if dry_run:
+        for line in result.plan.describe():
+            click.echo(line)
+        click.echo("dry run: nothing was written")
+        sys.exit(result.exit_code)
+    click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
+    c = result.counts()
+    if not quiet:
+        for rec in result.records:
+            if rec["status"] in ("failed", "cancelled"):
+                click.echo(f"  {rec['name']}: {rec['status'].upper()}: {rec['error_type']}: "
+                           f"{rec['error']}", err=True)
+        click.echo(f"{len(result.records)} field(s): {c['done']} done, {c['skipped']} skipped, "
+                   f"{c['failed']} failed" + (f", {c['cancelled']} cancelled"
+                                              if c["cancelled"] else "")
+                   + f"; summary {result.files.get('csv')}, index {result.files.get('index')}")
+    if result.stopped:
+        click.echo(f"pmap: stopped by {result.stopped}; run the same command again to finish "
+                   "the batch", err=True)
+    sys.exit(result.exit_code)
+
+
 @cli.command("config")
 def config_reference() -> None:
     """Print every configuration key with its unit, default and source (Markdown)."""

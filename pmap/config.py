@@ -38,7 +38,8 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover - exercised on Python 3.10 only
     import tomli as tomllib
 
-__all__ = ["FieldInfo", "GridSettings", "OutputSettings", "FieldConfig", "load_config", "configuration_reference"]
+__all__ = ["FieldInfo", "GridSettings", "OutputSettings", "FieldConfig", "load_config", "read_toml",
+           "configuration_reference"]
 
 
 _RECORD = "common practice, no source"
@@ -227,6 +228,21 @@ def load_config(path: str | Path | None = None) -> FieldConfig:
     path = Path(path)
     if not path.is_file():
         raise ConfigError(f"config file not found: {path}")
+    data = read_toml(path)
+    return config_from_dict(_with_calibration_file(data, path), source=str(path))
+
+
+def read_toml(path: str | Path) -> dict[str, Any]:
+    """A TOML file as a dict, without checking its sections or keys.
+
+    UTF-8 (a byte-order mark is skipped) or UTF-16 with its byte-order mark.
+
+    Raises
+    ------
+    ConfigError
+        The file is unreadable, not UTF-8/UTF-16 text or not TOML; the message names it.
+    """
+    path = Path(path)
     try:
         raw = path.read_bytes()
     except OSError as exc:
@@ -240,10 +256,9 @@ def load_config(path: str | Path | None = None) -> FieldConfig:
             f"is 0x{raw[exc.start]:02x}): save the file as UTF-8"
         ) from exc
     try:
-        data = tomllib.loads(text)
+        return tomllib.loads(text)
     except tomllib.TOMLDecodeError as exc:
         raise ConfigError(f"{path}: not valid TOML ({exc})") from exc
-    return config_from_dict(_with_calibration_file(data, path), source=str(path))
 
 
 #: Sections a calibration file (``calibration.file``) contributes to a config.

@@ -312,7 +312,7 @@ def draw_field_pictures(result: FieldResult, inputs: FieldInputs, root: Path) ->
                                       if config.field.sampling_date else "") if s)
     common = {"samples_xy": samples_xy, "boundary": inputs.boundary, "subtitle": subtitle}
     if mode == "all":
-        (root / "maps").mkdir(exist_ok=True)
+        (root / "maps").mkdir(parents=True, exist_ok=True)
         for name, array in picture_layers(result).items():
             kw = map_kwargs(name, array, result)
             shown = kw.pop("array")
