@@ -14,6 +14,7 @@ from pmap.io import rasters
 from pmap.prescribe.prescription import NOT_SAMPLED
 from pmap.soil.environment import PSR_CLASS_LABELS
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
+from pmap.soil.lime import class_labels as lime_class_labels
 
 __all__ = ["LAYERS", "LayerInfo", "layer_info", "hex_to_rgba", "LIME_COLOURS",
            "MODEL_LAYERS", "PRESCRIPTION_LAYERS", "LIME_LAYERS", "PROBABILITY_LAYERS"]
@@ -109,11 +110,13 @@ PROBABILITY_LAYERS: tuple[str, ...] = (
     "fixation_high_probability")
 
 
-def layer_info(name: str, zone_labels: tuple[str, ...] | None = None) -> LayerInfo:
+def layer_info(name: str, zone_labels: tuple[str, ...] | None = None,
+               lime_breaks_t_ha: tuple[float, ...] | None = None) -> LayerInfo:
     """Description of a layer, including ``<property>_variance`` and ``_std_error`` layers.
 
     ``zone_labels`` name the zone classes (the run's interpretation table); the zone
     layer also holds code 255 for cells too far from every sample ("not sampled").
+    ``lime_breaks_t_ha`` (``lime.zone_breaks_t_ha``) name the lime-rate classes.
     """
     if name == "zones":
         labels = tuple(zone_labels or ())
@@ -128,6 +131,12 @@ def layer_info(name: str, zone_labels: tuple[str, ...] | None = None) -> LayerIn
         classes[NOT_SAMPLED] = "not sampled (no rate)"
         colours[NOT_SAMPLED] = _NOT_SAMPLED_COLOUR
         return LayerInfo(LAYERS["zones"].title, "class", classes=classes, colours=colours)
+    if name == "lime_zones" and lime_breaks_t_ha is not None:
+        labels = lime_class_labels(lime_breaks_t_ha)
+        return LayerInfo(LAYERS[name].title, "class",
+                         classes={i + 1: t for i, t in enumerate(labels)},
+                         colours={i + 1: LIME_COLOURS.get(i + 1, "#000000")
+                                  for i in range(len(labels))})
     if name.endswith("_variance"):
         base = LAYERS[name[: -len("_variance")]]
         unit = "pH units^2" if base.unit == "pH units" else f"({base.unit})^2"

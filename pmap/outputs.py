@@ -26,7 +26,6 @@ from pmap.io.manifest import file_record, write_manifest
 from pmap.io.publish import OutputTransaction, open_transaction
 from pmap.layers import (
     LAYERS,
-    LIME_COLOURS,
     MODEL_LAYERS,
     PRESCRIPTION_LAYERS,
     LayerInfo,
@@ -34,7 +33,6 @@ from pmap.layers import (
     layer_info,
 )
 from pmap.soil.fixation import MECHANISM_LABELS, RISK_CLASS_LABELS
-from pmap.soil.lime import class_labels as lime_class_labels
 
 if TYPE_CHECKING:
     from pmap.results import FieldInputs, FieldResult
@@ -204,13 +202,8 @@ def write_outputs(
         grid = result.grid
         (tmp / "rasters").mkdir()
         for name, array in result.layers.items():
-            info = layer_info(name, tuple(result.prescription["zone_labels"]))
-            if name == "lime_zones":
-                labels = lime_class_labels(result.config.lime.zone_breaks_t_ha)
-                info = dataclasses.replace(
-                    info, classes={i + 1: t for i, t in enumerate(labels)},
-                    colours={i + 1: LIME_COLOURS.get(i + 1, "#000000")
-                             for i in range(len(labels))})
+            info = layer_info(name, tuple(result.prescription["zone_labels"]),
+                              result.config.lime.zone_breaks_t_ha)
             colormap = ({k: hex_to_rgba(v) for k, v in info.colours.items()}
                         if info.colours else None)
             rasters.write_cog(

@@ -46,6 +46,7 @@ from pathlib import Path
 from typing import Any
 
 from pmap._version import __version__
+from pmap.config import read_toml
 from pmap.errors import ConfigError, InputError, PmapError
 
 if sys.version_info >= (3, 11):
@@ -253,12 +254,6 @@ def _input_hashes(path: Path) -> dict[str, str]:
 
     parts = shapefile_parts(path) if path.suffix.lower() == ".shp" else [path]
     return {p.name: _sha256(p) for p in parts}
-
-
-def _read_toml(path: Path) -> dict[str, Any]:
-    from pmap.config import read_toml
-
-    return read_toml(path)
 
 
 def _config_sections() -> tuple[str, ...]:
@@ -581,12 +576,12 @@ def discover_fields(source: str | Path, out_dir: str | Path
         raise InputError(f"batch source not found: {source} (a folder of field folders, or a "
                          "CSV/TOML table of fields)")
     base = source if source.is_dir() else source.parent
-    table_data = (_read_toml(source) if source.is_file() and source.suffix.lower() == ".toml"
+    table_data = (read_toml(source) if source.is_file() and source.suffix.lower() == ".toml"
                   else None)
     beside = base / BATCH_TOML
     layers, names = [], []
     if beside.is_file() and beside.resolve() != source.resolve():
-        layers.append(_read_toml(beside))
+        layers.append(read_toml(beside))
         names.append(beside)
     if table_data is not None:
         own = {k: v for k, v in table_data.items() if k != "fields"}
@@ -821,7 +816,7 @@ def _plan_entry(entry: FieldEntry, defaults: dict[str, Any], default_layer: list
         for path in entry.config_files:
             if not path.is_file():
                 raise InputError(f"config file not found: {path}")
-            data = _read_toml(path)
+            data = read_toml(path)
             section = _pop_batch_section(data, str(path))
             split_by = split_by or section.get("split_by") or ""
             own.append(_absolutise(data, path.parent))

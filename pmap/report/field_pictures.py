@@ -30,7 +30,6 @@ import numpy as np
 
 from pmap.cautions import CAUTIONS, CAUTIONS_SHORT
 from pmap.layers import (
-    LIME_COLOURS,
     LIME_LAYERS,
     MODEL_LAYERS,
     PRESCRIPTION_LAYERS,
@@ -38,7 +37,6 @@ from pmap.layers import (
     layer_info,
 )
 from pmap.prescribe.prescription import BASIS_MEASURED
-from pmap.soil.lime import class_labels as lime_class_labels
 
 if TYPE_CHECKING:
     from pmap.results import FieldInputs, FieldResult
@@ -66,6 +64,13 @@ METHOD_NAMES: dict[str, str] = {
 _DISCRETE_RATE_LAYERS = ("p2o5_zone_rate", "product_zone_rate")
 #: Most candidate rows printed under a variogram plot (all are in summary.json).
 _TABLE_ROWS = 12
+
+
+def _subtitle(result: FieldResult, *extra: str) -> str:
+    """Farm, sampling date and any extra words, joined for a subtitle."""
+    field = result.config.field
+    parts = (field.farm, f"sampled {field.sampling_date}" if field.sampling_date else "", *extra)
+    return " | ".join(s for s in parts if s)
 
 
 def method_name(method: str | None) -> str:
@@ -177,15 +182,13 @@ def map_kwargs(name: str, array: np.ndarray, result: FieldResult) -> dict[str, A
     """How one layer's map is drawn: the keywords of :func:`pmap.report.maps.layer_figure`
     (without the grid, samples, boundary and subtitle)."""
     config = result.config
-    info = layer_info(name, tuple(result.prescription["zone_labels"]))
+    info = layer_info(name, tuple(result.prescription["zone_labels"]),
+                      config.lime.zone_breaks_t_ha)
     interp = result.interpretation
     method = method_name(interp.method)
     kw: dict[str, Any] = {"title": f"{config.field.name}: {info.title}", "unit": info.unit,
                           "classes": info.classes, "colours": info.colours, "cmap": info.cmap}
     if name == "lime_zones":
-        labels = lime_class_labels(config.lime.zone_breaks_t_ha)
-        kw["classes"] = {i + 1: t for i, t in enumerate(labels)}
-        kw["colours"] = {i + 1: LIME_COLOURS.get(i + 1, "#000000") for i in range(len(labels))}
         kw["legend_title"] = "lime rate (t/ha)"
     if name in _DISCRETE_RATE_LAYERS:
         shown, classes = _discrete_rates(array, info.unit)
@@ -308,12 +311,12 @@ def draw_field_pictures(result: FieldResult, inputs: FieldInputs, root: Path) ->
     config = result.config
     grid = result.grid
     samples_xy = inputs.samples.coords
-    subtitle = " | ".join(s for s in (config.field.farm, f"sampled {config.field.sampling_date}"
-                                      if config.field.sampling_date else "") if s)
-    common = {"samples_xy": samples_xy, "boundary": inputs.boundary, "subtitle": subtitle}
+    common = {"samples_xy": samples_xy, "boundary": inputs.boundary,
+              "subtitle": _subtitle(result)}
     if mode == "all":
         (root / "maps").mkdir(parents=True, exist_ok=True)
-        for name, array in picture_layers(result).items():
+        layers = picture_layers(result)
+        for name, array in layers.items():
             kw = map_kwargs(name, array, result)
             shown = kw.pop("array")
             rel = f"maps/{name}.png"
@@ -345,7 +348,7 @@ def draw_field_pictures(result: FieldResult, inputs: FieldInputs, root: Path) ->
                                  title=f"{config.field.name}: soil model calibrated to the "
                                  "lab's soil-test P")
             outputs[rel] = "soil model against the lab's soil-test P"
-        props = _diagnostics(result)
+        props = _diagnostics(result, layers)
         if props:
             with _timed(timings, DIAGNOSTICS_PDF):
                 written = sheets.write_diagnostics(
@@ -371,8 +374,9 @@ def draw_field_pictures(result: FieldResult, inputs: FieldInputs, root: Path) ->
     return outputs, timings
 
 
-def _diagnostics(result: FieldResult) -> list[Any]:
-    """One diagnostics page's content per kriged property (constant properties have none)."""
+def _diagnostics(result: FieldResult, layers: dict[str, np.ndarray]) -> list[Any]:
+    """One diagnostics page's content per kriged property (constant properties have none);
+    ``layers`` as :func:`picture_layers` gives them (with the standard errors)."""
     from pmap.report.sheets import PropertyDiagnostics
 
     pages = []
@@ -381,7 +385,6 @@ def _diagnostics(result: FieldResult) -> list[Any]:
         if (interp.kind != "kriged" or values is None or coords is None
                 or len(values) != len(interp.cv.errors)):
             continue
-        variance = np.asarray(result.layers[f"{name}_variance"], dtype=float)
         pages.append(PropertyDiagnostics(
             name=name, title=_property_title(name), unit=layer_info(name).unit,
             lags=interp.empirical.lag, gamma=interp.empirical.gamma,
@@ -389,7 +392,7 @@ def _diagnostics(result: FieldResult) -> list[Any]:
             observed=np.asarray(values, dtype=float),
             predicted=np.asarray(values, dtype=float) + np.asarray(interp.cv.errors),
             samples_xy=np.asarray(coords, dtype=float),
-            standard_error=np.sqrt(np.clip(variance, 0.0, None)),
+            standard_error=layers[f"{name}_std_error"],
             figures_lines=_candidate_table(interp) or [_model_text(interp)],
             summary_lines=[_model_text(interp)]))
     return pages
@@ -439,9 +442,7 @@ def overview_content(result: FieldResult, inputs: FieldInputs) -> dict[str, Any]
                                cmap=kw["cmap"], vmin=0.0, vmax=1.0,
                                class_breaks=kw["class_breaks"]))
     basis = rates_basis(result) + " " + model_basis(result)
-    subtitle = " | ".join(s for s in (config.field.farm, f"sampled {config.field.sampling_date}"
-                                      if config.field.sampling_date else "",
-                                      result.prescription.get("product") or "") if s)
+    subtitle = _subtitle(result, result.prescription.get("product") or "")
     return {"grid": result.grid, "boundary": inputs.boundary,
             "samples_xy": inputs.samples.coords,
             "title": f"{config.field.name}: P prescription overview", "subtitle": subtitle,

@@ -1026,28 +1026,16 @@ def plot_bottom_band(font_size: float, label_size: float | None = None) -> float
     return (3.5 + 3.5) / 72 + text_height(1, font_size) + 0.05 + text_height(1, label_size)
 
 
-def plot_variogram(
-    path_png: str | Path,
-    lags: np.ndarray,
-    gamma: np.ndarray,
-    counts: np.ndarray,
-    model_callable: Callable[[np.ndarray], np.ndarray],
-    *,
-    title: str,
-    unit: str,
-    subtitle: str = "",
-    candidates: Sequence[tuple[str, Callable[[np.ndarray], np.ndarray] | None]] = (),
-    table: Sequence[str] = (),
-) -> Path:
+def plot_variogram(path_png: str | Path, *args: Any, **kw: Any) -> Path:
     """Write :func:`variogram_figure` as a PNG (150 dpi), replacing ``path_png`` atomically.
+
+    ``args`` and ``kw`` are those of :func:`variogram_figure`.
 
     Returns
     -------
     Path
     """
-    return _save(variogram_figure(lags, gamma, counts, model_callable, title=title, unit=unit,
-                                  subtitle=subtitle, candidates=candidates, table=table),
-                 path_png)
+    return _save(variogram_figure(*args, **kw), path_png)
 
 
 # --------------------------------------------------------------------------- furniture

@@ -88,6 +88,17 @@ def _paper(paper: str) -> tuple[float, float]:
         raise ValueError(f"paper must be one of {sorted(PAPER_SIZES)}, got {paper!r}") from None
 
 
+def _new_page(paper: str) -> tuple[Figure, _Page, float, float]:
+    """A blank landscape page on an Agg canvas, its layout helper and its size (in)."""
+    from matplotlib.backends.backend_agg import FigureCanvasAgg
+    from matplotlib.figure import Figure
+
+    width, height = _paper(paper)
+    fig = Figure(figsize=(width, height), dpi=_DPI)
+    FigureCanvasAgg(fig)
+    return fig, _Page(fig), width, height
+
+
 # --------------------------------------------------------------------------- map panels
 
 
@@ -254,17 +265,12 @@ def overview_figure(
     -------
     matplotlib.figure.Figure
     """
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
-    from matplotlib.figure import Figure
 
     if not panels:
         raise ValueError("an overview needs at least the rate-map panel")
     if len(panels) > 4:
         raise ValueError(f"an overview holds at most four panels, got {len(panels)}")
-    width, height = _paper(paper)
-    fig = Figure(figsize=(width, height), dpi=_DPI)
-    FigureCanvasAgg(fig)
-    page = _Page(fig)
+    fig, page, width, height = _new_page(paper)
     m, gap = _PAGE_MARGIN, _GAP
     full = width - 2 * m
     # Header and foot.
@@ -492,10 +498,8 @@ def diagnostics_figure(
     -------
     matplotlib.figure.Figure
     """
-    from matplotlib.backends.backend_agg import FigureCanvasAgg
     from matplotlib.cm import ScalarMappable
     from matplotlib.colors import Normalize
-    from matplotlib.figure import Figure
     from matplotlib.ticker import MaxNLocator
 
     observed = np.asarray(prop.observed, dtype=np.float64).ravel()
@@ -503,10 +507,7 @@ def diagnostics_figure(
     pts = np.asarray(prop.samples_xy, dtype=np.float64).reshape(-1, 2)
     if not (observed.shape == predicted.shape == (len(pts),)):
         raise ValueError("observed, predicted and samples_xy must have one entry per sample")
-    width, height = _paper(paper)
-    fig = Figure(figsize=(width, height), dpi=_DPI)
-    FigureCanvasAgg(fig)
-    page = _Page(fig)
+    fig, page, width, height = _new_page(paper)
     m, gap = _PAGE_MARGIN, _GAP
     full = width - 2 * m
     head = f"{title}: diagnostics of {prop.title}" + (f" ({prop.unit})" if prop.unit else "")

@@ -265,3 +265,27 @@ def test_the_run_writes_its_report_with_every_picture_embedded(demo):
     rows = re.findall(r'<tr data-zone-id="(\d+)"', text)
     assert [int(r) for r in rows] == [p["zone_id"] for p in summary["rate_polygons"]]
     assert "http://" not in text.replace("http://www.w3.org", "")
+
+
+def test_lime_class_legend_names_each_class_as_the_lime_table_does(demo_run):
+    result, _ = demo_run
+    classes = map_kwargs("lime_zones", result.layers["lime_zones"], result)["classes"]
+    table = result.soil["lime"]["classes"]
+    assert table, "the demo maps lime"
+    for row in table:  # the raster code of each class carries that class's label
+        assert classes[row["class"]] == row["label"]
+
+
+def test_diagnostics_pages_show_the_standard_error_and_the_loo_predictions(demo_run):
+    from pmap.report.field_pictures import _diagnostics
+
+    result, _ = demo_run
+    pages = _diagnostics(result, picture_layers(result))
+    assert [p.name for p in pages] == [n for n, i in result.interpolations.items()
+                                       if i.kind == "kriged"]
+    inside = result.grid.mask
+    for page in pages:
+        interp = result.interpolations[page.name]
+        variance = result.layers[f"{page.name}_variance"]
+        assert np.allclose(page.standard_error[inside] ** 2, variance[inside], equal_nan=True)
+        assert np.allclose(page.predicted - page.observed, interp.cv.errors)
