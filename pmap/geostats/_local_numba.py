@@ -1,19 +1,23 @@
 """Compiled kernel of neighbourhood kriging (numba), used by :mod:`pmap.geostats.neighbourhood`.
 
-The same covariance-form algebra as the pure-numpy path of that module, per target:
-k nearest samples by a search over square buckets of samples (rings of buckets until no
-unsearched bucket can hold a nearer sample), the neighbour set sorted, looked up among the
-last 128 sets factorised in this block (targets arrive in Z-order, so neighbouring targets
-follow each other and mostly share their set); on a miss, the previous target's factor
-updated when at most three samples changed (rank-one downdate of a dropped row, one
-appended row per new sample), else a fresh Cholesky factorisation; then one triangular
-solve.  Blocks of targets run in parallel threads.
+The same ordinary-kriging algebra as the pure-numpy path of that module.  Targets arrive
+in Z-order and are taken in chunks of up to 64 consecutive ones.  Per chunk, the samples
+that can be among any of its targets' k nearest (triangle inequality around the chunk's
+centre) are gathered from square buckets of samples, sorted by index.  Per target: the k
+nearest of those candidates, ranked only within a band around the previous target's k-th
+distance (a quickselect when that fails), so the set comes out sorted by index without a
+sort; the set looked up among the last 128 factorised in this block; on a miss, the
+previous target's factor updated when at most three samples changed (rank-one downdate
+of a dropped row, one appended row per new sample), else a fresh Cholesky factorisation,
+and the forward solutions ``L^-1 1`` and ``L^-1 z`` redone from the first changed row;
+then one forward solve ``y = L^-1 c0`` gives the estimate, variance and Lagrange term.
+Blocks of 2,048 targets run in parallel threads.
 
-The same bucket search (:func:`knn_rows`, :func:`knn_targets`) and Cholesky factorisation
-(:func:`_cholesky`; :func:`simple_kriging_sets` for simple kriging with known mean 0) are
-the numba engine of the module's public ``NeighbourSearch`` and ``simple_kriging_weights``,
-which :mod:`pmap.geostats.simulation` uses, with :func:`earlier_knn` for its brute force
-within a block of the path.
+The bucket search :func:`_knn` (:func:`knn_rows`, :func:`knn_targets`) and the Cholesky
+factorisation (:func:`_cholesky`; :func:`simple_kriging_sets` for simple kriging with
+known mean 0) are also the numba engine of the module's public ``NeighbourSearch`` and
+``simple_kriging_weights``, which :mod:`pmap.geostats.simulation` uses, with
+:func:`earlier_knn` for its brute force within a block of the path.
 
 Compiled on first use and cached on disk (``cache=True``); see docs/geostatistics.md for
 the measured compile cost.
@@ -33,6 +37,13 @@ _MAX_CHANGES = 3
 # ... for at most this many updates in a row before a fresh factorisation.
 _MAX_CHAIN = 32
 _RCOND = 1e-12
+# Targets (consecutive in Z-order) that share one list of candidate samples ...
+_CHUNK = 64
+# ... halved while the list is longer than this many times k.
+_CHUNK_CANDIDATES = 4
+# Candidates near the previous target's k-th distance ranked directly (else quickselect).
+_BAND = 32
+_FAST = {"reassoc", "contract", "arcp"}
 
 
 @njit(cache=True, inline="always")
@@ -126,17 +137,180 @@ def _knn(tx, ty, self_index, xy, bstart, border, b0x, b0y, bsize, nbx, nby, k, r
 
 
 @njit(cache=True)
-def _factorise(xy, z, members, kk, kind, nug, ps, rng, shape, L, u, g):
-    """Cholesky of the set's covariance matrix into L; u = C^-1 1, g = C^-1 (z - m 1).
-
-    Returns (s, mean, regularised).
-    """
-    regularised = _cholesky(xy, members, kk, kind, nug, ps, rng, shape, L)
-    s, mean = _solve_u_g(xy, z, members, kk, L, u, g)
-    return s, mean, regularised
+def _kth_smallest(a, n, kth):
+    """The ``kth`` smallest (0-based) of ``a[:n]``; reorders ``a[:n]`` (quickselect)."""
+    lo = 0
+    hi = n - 1
+    while hi > lo:
+        pivot = a[(lo + hi) // 2]
+        i = lo
+        j = hi
+        while i <= j:
+            while a[i] < pivot:
+                i += 1
+            while a[j] > pivot:
+                j -= 1
+            if i <= j:
+                tmp = a[i]
+                a[i] = a[j]
+                a[j] = tmp
+                i += 1
+                j -= 1
+        if kth <= j:
+            hi = j
+        elif kth >= i:
+            lo = i
+        else:
+            break
+    return a[kth]
 
 
 @njit(cache=True)
+def _chunk_candidates(txy, order, lo, hi, with_self, xy, bstart, border, b0x, b0y, bsize, nbx,
+                      nby, k, radius2, best_d, best_i, cand, ccx, ccy):
+    """Samples that can be among the k nearest of any target ``order[lo:hi]``, by index.
+
+    With c the centre of the targets' bounding box and h its half diagonal, a target's k
+    nearest lie within ``h + min(radius, d_k(c) + h)`` of c (triangle inequality; the
+    k + 1 nearest when each target leaves itself out).  ``cand`` receives those samples
+    sorted by index, ``ccx, ccy`` their coordinates; returns how many.
+    """
+    xmin = np.inf
+    xmax = -np.inf
+    ymin = np.inf
+    ymax = -np.inf
+    for q in range(lo, hi):
+        t = order[q]
+        xmin = min(xmin, txy[t, 0])
+        xmax = max(xmax, txy[t, 0])
+        ymin = min(ymin, txy[t, 1])
+        ymax = max(ymax, txy[t, 1])
+    cx = 0.5 * (xmin + xmax)
+    cy = 0.5 * (ymin + ymax)
+    h = 0.5 * np.sqrt((xmax - xmin) ** 2 + (ymax - ymin) ** 2)
+    kq = k + 1 if with_self else k
+    cnt = _knn(cx, cy, -1, xy, bstart, border, b0x, b0y, bsize, nbx, nby, kq, np.inf,
+               best_d, best_i)
+    reach = np.sqrt(radius2)
+    if cnt == kq:
+        reach = min(reach, np.sqrt(best_d[kq - 1]) + h)
+    big = (h + reach) * (1.0 + 1e-9) + 1e-9    # slack: an extra candidate is harmless
+    if big == np.inf:
+        x_lo = 0
+        x_hi = nbx - 1
+        y_lo = 0
+        y_hi = nby - 1
+    else:
+        x_lo = max(int(np.floor((cx - big - b0x) / bsize)), 0)
+        x_hi = min(int(np.floor((cx + big - b0x) / bsize)), nbx - 1)
+        y_lo = max(int(np.floor((cy - big - b0y) / bsize)), 0)
+        y_hi = min(int(np.floor((cy + big - b0y) / bsize)), nby - 1)
+    big2 = big * big
+    nc = 0
+    for yy in range(y_lo, y_hi + 1):
+        for xx in range(x_lo, x_hi + 1):
+            b = yy * nbx + xx
+            for p in range(bstart[b], bstart[b + 1]):
+                j = border[p]
+                dx = xy[j, 0] - cx
+                dy = xy[j, 1] - cy
+                if dx * dx + dy * dy <= big2:
+                    cand[nc] = j
+                    nc += 1
+    cand[:nc].sort()
+    for i in range(nc):
+        ccx[i] = xy[cand[i], 0]
+        ccy[i] = xy[cand[i], 1]
+    return nc
+
+
+@njit(cache=True)
+def _select_nearest(tx, ty, self_index, cand, ccx, ccy, nc, k, radius2, prev_d2k, step, d2s,
+                    scratch, band_d, band_i, members):
+    """The k nearest of the candidates ``cand[:nc]`` (at ``ccx, ccy``) within the radius.
+
+    Nearest by squared distance, ties cut at the k-th place by index (as :func:`_knn`);
+    ``members`` receives them in the candidates' index order.  The k-th distance of the
+    previous target, ``prev_d2k`` (squared; negative if none), moves by at most ``step``
+    (m, the distance between the two targets): only the candidates in that band are
+    ranked, and a quickselect over all of them is the fallback, so the result is exact
+    either way.  Returns (count, squared k-th distance or -1 when fewer were found).
+    """
+    for i in range(nc):
+        dx = ccx[i] - tx
+        dy = ccy[i] - ty
+        d2s[i] = dx * dx + dy * dy
+    if radius2 < np.inf:
+        for i in range(nc):
+            if d2s[i] > radius2:
+                d2s[i] = np.inf
+    if self_index >= 0:
+        for i in range(nc):
+            if cand[i] == self_index:
+                d2s[i] = np.inf
+    n_valid = 0
+    for i in range(nc):
+        n_valid += d2s[i] < np.inf
+    if n_valid <= k:
+        kk = 0
+        for i in range(nc):
+            if d2s[i] < np.inf:
+                members[kk] = cand[i]
+                kk += 1
+        return kk, -1.0
+    found = False
+    thr = 0.0
+    thr_j = 0
+    if prev_d2k >= 0.0:
+        dk = np.sqrt(prev_d2k)
+        lo = dk - step
+        lo2 = lo * lo * (1.0 - 1e-12) if lo > 0.0 else -1.0
+        hi2 = (dk + step) ** 2 * (1.0 + 1e-12)
+        n_in = 0
+        n_band = 0
+        for i in range(nc):
+            d2 = d2s[i]
+            n_in += d2 < lo2
+            n_band += (d2 >= lo2) & (d2 <= hi2)
+        if n_in < k and k <= n_in + n_band and n_band <= band_d.size:
+            nb = 0
+            for i in range(nc):
+                d2 = d2s[i]
+                if d2 >= lo2 and d2 <= hi2:     # insertion by (distance, index)
+                    pos = nb
+                    while pos > 0 and band_d[pos - 1] > d2:
+                        band_d[pos] = band_d[pos - 1]
+                        band_i[pos] = band_i[pos - 1]
+                        pos -= 1
+                    band_d[pos] = d2
+                    band_i[pos] = cand[i]
+                    nb += 1
+            thr = band_d[k - n_in - 1]
+            thr_j = band_i[k - n_in - 1]
+            found = True
+    if not found:
+        for i in range(nc):
+            scratch[i] = d2s[i]
+        thr = _kth_smallest(scratch, nc, k - 1)
+        need = k
+        for i in range(nc):
+            need -= d2s[i] < thr
+        for i in range(nc):
+            if d2s[i] == thr:
+                need -= 1
+                if need == 0:
+                    thr_j = cand[i]
+                    break
+    kk = 0
+    for i in range(nc):
+        d2 = d2s[i]
+        if d2 < thr or (d2 == thr and cand[i] <= thr_j):
+            members[kk] = cand[i]
+            kk += 1
+    return kk, thr
+
+
+@njit(cache=True, fastmath=_FAST)
 def _cholesky(xy, members, kk, kind, nug, ps, rng, shape, L):
     """Cholesky factor of the unit-sill covariance matrix of the set ``members`` into L.
 
@@ -176,43 +350,30 @@ def _cholesky(xy, members, kk, kind, nug, ps, rng, shape, L):
     return regularised
 
 
-@njit(cache=True)
-def _solve_u_g(xy, z, members, kk, L, u, g):
-    """u = C^-1 1 and g = C^-1 (z - m 1) from the factor L of the set ``members``.
+@njit(cache=True, fastmath=_FAST)
+def _forward_ones_values(z, members, kk, L, a, b, start):
+    """a = L^-1 1 and b = L^-1 z over the set ``members``, rows ``start..kk-1``.
 
-    Returns (s, mean) with s = 1'u and mean = u'z / s.
+    Rows before ``start`` are kept (they do not change when the factor's later rows are
+    updated).  Returns (s, ab) = (1'C^-1 1, 1'C^-1 z) = (a'a, a'b).
     """
-    # u = C^-1 1 and C^-1 z by two triangular solves each.
-    w = np.empty(kk)
-    v = np.empty(kk)
-    for i in range(kk):
-        a = 1.0
-        b = z[members[i]]
+    for i in range(start, kk):
+        ai = 1.0
+        bi = z[members[i]]
         for p in range(i):
-            a -= L[i, p] * w[p]
-            b -= L[i, p] * v[p]
-        w[i] = a / L[i, i]
-        v[i] = b / L[i, i]
-    for i in range(kk - 1, -1, -1):
-        a = w[i]
-        b = v[i]
-        for p in range(i + 1, kk):
-            a -= L[p, i] * u[p]
-            b -= L[p, i] * g[p]
-        u[i] = a / L[i, i]
-        g[i] = b / L[i, i]
+            ai -= L[i, p] * a[p]
+            bi -= L[i, p] * b[p]
+        a[i] = ai / L[i, i]
+        b[i] = bi / L[i, i]
     s = 0.0
-    uz = 0.0
+    ab = 0.0
     for i in range(kk):
-        s += u[i]
-        uz += u[i] * z[members[i]]
-    mean = uz / s
-    for i in range(kk):
-        g[i] -= mean * u[i]                 # C^-1 (z - m 1) = C^-1 z - m u
-    return s, mean
+        s += a[i] * a[i]
+        ab += a[i] * b[i]
+    return s, ab
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath=_FAST)
 def _drop_member(L, kk, p):
     """Cholesky factor of the set without its p-th member (in factor order), in place.
 
@@ -244,7 +405,7 @@ def _drop_member(L, kk, p):
     return True
 
 
-@njit(cache=True)
+@njit(cache=True, fastmath=_FAST)
 def _append_member(xy, L, order, kk, new, kind, nug, ps, rng, shape):
     """Add sample ``new`` as the last member of the factor (row kk), O(kk^2).
 
@@ -269,7 +430,7 @@ def _append_member(xy, L, order, kk, new, kind, nug, ps, rng, shape):
     return True
 
 
-@njit(cache=True, parallel=True)
+@njit(cache=True, parallel=True, fastmath=_FAST)
 def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize, nbx, nby,
                   kind, nug, ps, rng, shape, k, radius2, block, est, var, mu, counts):
     """Krige ``txy[order]`` in blocks; write unit-sill results at the original positions.
@@ -279,6 +440,11 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
     """
     m = order.size
     n_blocks = (m + block - 1) // block
+    with_self = False
+    for t in range(m):
+        if self_index[t] >= 0:
+            with_self = True
+            break
     for bi in prange(n_blocks):
         cache_sets = np.full((_CACHE, k), -1, dtype=np.int64)
         cache_order = np.full((_CACHE, k), -1, dtype=np.int64)
@@ -288,45 +454,70 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
         removed = np.empty(_MAX_CHANGES, dtype=np.int64)
         added = np.empty(_MAX_CHANGES, dtype=np.int64)
         cache_L = np.zeros((_CACHE, k, k))
-        cache_u = np.zeros((_CACHE, k))
-        cache_g = np.zeros((_CACHE, k))
+        cache_a = np.zeros((_CACHE, k))
+        cache_b = np.zeros((_CACHE, k))
         cache_s = np.zeros(_CACHE)
-        cache_mean = np.zeros(_CACHE)
+        cache_ab = np.zeros(_CACHE)
         next_slot = 0
-        best_d = np.empty(k)
-        best_i = np.empty(k, dtype=np.int64)
+        best_d = np.empty(k + 1)
+        best_i = np.empty(k + 1, dtype=np.int64)
         members = np.empty(k, dtype=np.int64)
-        c0 = np.empty(k)
         y = np.empty(k)
         n_sets = 0
         n_reg = 0
         n_empty = 0
-        for q in range(bi * block, min((bi + 1) * block, m)):
+        cand = np.empty(xy.shape[0], dtype=np.int64)
+        d2s = np.empty(xy.shape[0])
+        scratch = np.empty(xy.shape[0])
+        ccx = np.empty(xy.shape[0])
+        ccy = np.empty(xy.shape[0])
+        band_d = np.empty(_BAND)
+        band_i = np.empty(_BAND, dtype=np.int64)
+        d2k = -1.0
+        px = 0.0
+        py = 0.0
+        q_end = min((bi + 1) * block, m)
+        chunk_hi = bi * block
+        nc = 0
+        for q in range(bi * block, q_end):
+            if q == chunk_hi:                           # the next chunk of targets
+                size = _CHUNK
+                while True:
+                    chunk_hi = min(q + size, q_end)
+                    nc = _chunk_candidates(txy, order, q, chunk_hi, with_self, xy, bstart,
+                                           border, b0x, b0y, bsize, nbx, nby, k, radius2,
+                                           best_d, best_i, cand, ccx, ccy)
+                    if nc <= _CHUNK_CANDIDATES * k or size == 1:
+                        break
+                    size //= 2
             t = order[q]
             tx = txy[t, 0]
             ty = txy[t, 1]
-            kk = _knn(tx, ty, self_index[t], xy, bstart, border, b0x, b0y, bsize, nbx, nby, k,
-                      radius2, best_d, best_i)
+            step = np.sqrt((tx - px) ** 2 + (ty - py) ** 2)
+            px = tx
+            py = ty
+            kk, d2k = _select_nearest(tx, ty, self_index[t], cand, ccx, ccy, nc, k, radius2,
+                                      d2k, step, d2s, scratch, band_d, band_i, members)
+            dmin = np.inf
+            jmin = -1
+            for i in range(kk):                         # the nearest, lowest index first
+                dx = xy[members[i], 0] - tx
+                dy = xy[members[i], 1] - ty
+                d2 = dx * dx + dy * dy
+                if d2 < dmin:
+                    dmin = d2
+                    jmin = members[i]
             if kk == 0:
                 est[t] = np.nan
                 var[t] = np.nan
                 mu[t] = np.nan
                 n_empty += 1
                 continue
-            if best_d[0] == 0.0:
-                est[t] = z[best_i[0]]
+            if dmin == 0.0:
+                est[t] = z[jmin]
                 var[t] = 0.0
                 mu[t] = 0.0
                 continue
-            for i in range(kk):
-                members[i] = best_i[i]
-            for i in range(1, kk):                      # insertion sort of the indices
-                v = members[i]
-                p = i
-                while p > 0 and members[p - 1] > v:
-                    members[p] = members[p - 1]
-                    p -= 1
-                members[p] = v
             slot = -1
             for c in range(_CACHE):
                 if cache_kk[c] == kk:
@@ -372,10 +563,12 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
                                 L[i, j] = cache_L[last, i, j]
                         cur = kk
                         ok = True
+                        first = kk - na                 # first row that changes
                         for r in range(nr):
                             pos = 0
                             while od[pos] != removed[r]:
                                 pos += 1
+                            first = min(first, pos)
                             if not _drop_member(L, cur, pos):
                                 ok = False
                                 break
@@ -390,43 +583,48 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
                                     break
                                 cur += 1
                         if ok:
-                            s_, mean_ = _solve_u_g(xy, z, od, kk, L, cache_u[slot],
-                                                   cache_g[slot])
+                            for i in range(first):
+                                cache_a[slot, i] = cache_a[last, i]
+                                cache_b[slot, i] = cache_b[last, i]
+                            s_, ab_ = _forward_ones_values(z, od, kk, L, cache_a[slot],
+                                                           cache_b[slot], first)
                             cache_chain[slot] = cache_chain[last] + 1
                             updated = True
                 if not updated:
                     for i in range(kk):
                         cache_order[slot, i] = members[i]
-                    s_, mean_, reg = _factorise(xy, z, members, kk, kind, nug, ps, rng, shape,
-                                                cache_L[slot], cache_u[slot], cache_g[slot])
+                    reg = _cholesky(xy, members, kk, kind, nug, ps, rng, shape, cache_L[slot])
+                    s_, ab_ = _forward_ones_values(z, members, kk, cache_L[slot],
+                                                   cache_a[slot], cache_b[slot], 0)
                     cache_chain[slot] = 0
                     if reg:
                         n_reg += 1
                 cache_s[slot] = s_
-                cache_mean[slot] = mean_
+                cache_ab[slot] = ab_
                 cache_kk[slot] = kk
                 for i in range(kk):
                     cache_sets[slot, i] = members[i]
                 n_sets += 1
             last = slot
             L = cache_L[slot]
+            # y = L^-1 c0; with a = L^-1 1 and b = L^-1 z: tt = 1'C^-1 c0 = a'y,
+            # z'C^-1 c0 = b'y, and the weights C^-1 c0 + C^-1 1 (1 - tt) / s.
             qq = 0.0
             tt = 0.0
-            e = cache_mean[slot]
+            zy = 0.0
             for i in range(kk):
                 j = cache_order[slot, i]
                 dx = xy[j, 0] - tx
                 dy = xy[j, 1] - ty
-                c0[i] = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
-                acc = c0[i]
+                acc = _cov(np.sqrt(dx * dx + dy * dy), kind, nug, ps, rng, shape)
                 for p in range(i):
                     acc -= L[i, p] * y[p]
                 y[i] = acc / L[i, i]
                 qq += y[i] * y[i]
-                tt += cache_u[slot, i] * c0[i]
-                e += cache_g[slot, i] * c0[i]
+                tt += cache_a[slot, i] * y[i]
+                zy += cache_b[slot, i] * y[i]
             s_ = cache_s[slot]
-            est[t] = e
+            est[t] = zy + cache_ab[slot] * (1.0 - tt) / s_
             mu[t] = (1.0 - tt) / s_
             vv = 1.0 - qq + (1.0 - tt) * (1.0 - tt) / s_
             var[t] = vv if vv > 0.0 else 0.0
@@ -594,3 +792,50 @@ def covariance_block(xy, txy, kind, nug, ps, rng, shape, out):
         for j in range(m):                      # gamma(0) = 0: covariance 1 at distance 0
             if tx[j] == xi and ty[j] == yi:
                 row[j] = 1.0
+
+
+@njit(cache=True, parallel=True)
+def _morton_keys(txy, x0, y0, cell, keys):
+    """Interleaved bits of the targets' cell column and row (21 bits each) into ``keys``."""
+    for t in prange(txy.shape[0]):
+        qx = min(max(int(np.floor((txy[t, 0] - x0) / cell)), 0), 2**21 - 1)
+        qy = min(max(int(np.floor((txy[t, 1] - y0) / cell)), 0), 2**21 - 1)
+        key = 0
+        for bit in range(21):
+            key |= ((qx >> bit) & 1) << (2 * bit)
+            key |= ((qy >> bit) & 1) << (2 * bit + 1)
+        keys[t] = key
+
+
+@njit(cache=True)
+def _radix_argsort(keys):
+    """Stable argsort of non-negative int64 ``keys`` (least significant digit first, 11 bits)."""
+    m = keys.size
+    top = 0
+    for t in range(m):
+        top = max(top, keys[t])
+    order = np.arange(m)
+    spare = np.empty(m, dtype=np.int64)
+    shift = 0
+    while shift == 0 or (top >> shift) > 0:
+        count = np.zeros(2049, dtype=np.int64)
+        for t in range(m):
+            count[((keys[order[t]] >> shift) & 2047) + 1] += 1
+        for d in range(2048):
+            count[d + 1] += count[d]
+        for t in range(m):
+            j = order[t]
+            d = (keys[j] >> shift) & 2047
+            spare[count[d]] = j
+            count[d] += 1
+        order, spare = spare, order
+        shift += 11
+    return order
+
+
+def z_order(txy: np.ndarray, cell: float) -> np.ndarray:
+    """Order of the targets along a Z-order (Morton) curve at resolution ``cell`` (m)."""
+    keys = np.empty(txy.shape[0], dtype=np.int64)
+    lo = txy.min(axis=0)
+    _morton_keys(txy, float(lo[0]), float(lo[1]), float(cell), keys)
+    return _radix_argsort(keys)

@@ -661,17 +661,6 @@ def _buckets(xy: np.ndarray, k: int) -> tuple[np.ndarray, np.ndarray, float, flo
     return border, bstart, float(lo[0]), float(lo[1]), size, nbx, nby
 
 
-def _z_order(txy: np.ndarray, cell: float) -> np.ndarray:
-    """Order of the targets along a Z-order (Morton) curve at resolution ``cell`` (m)."""
-    q = np.floor((txy - txy.min(axis=0)) / cell).astype(np.uint64)
-    q = np.minimum(q, np.uint64(2**21 - 1))
-    key = np.zeros(txy.shape[0], dtype=np.uint64)
-    for bit in range(21):
-        one = np.uint64(1) << np.uint64(bit)
-        key |= ((q[:, 0] & one) << np.uint64(bit)) | ((q[:, 1] & one) << np.uint64(bit + 1))
-    return np.argsort(key, kind="stable").astype(np.int64)
-
-
 def _numba_path(
     xy: np.ndarray, values: np.ndarray, txy: np.ndarray, unit: VariogramModel, scale: float,
     k: int, radius: float | None, exclude_self: bool,
@@ -682,7 +671,7 @@ def _numba_path(
     m = txy.shape[0]
     span = np.ptp(txy, axis=0)
     spacing = float(np.sqrt(max(span[0] * span[1], 1e-18) / m)) if m > 1 else size
-    order = _z_order(txy, max(min(spacing, size), size * 1e-6))
+    order = kernel.z_order(txy, max(min(spacing, size), size * 1e-6))
     self_index = np.arange(m, dtype=np.int64) if exclude_self else np.full(m, -1, dtype=np.int64)
     radius2 = np.inf if radius is None else (float(radius) * (1.0 + 1e-12)) ** 2
     est = np.empty(m)

@@ -4,6 +4,7 @@ A plain script, not collected by pytest::
 
     python tests/benchmarks/bench_batch.py [--fields 200] [--cell-size 5] [--keep DIR]
     python tests/benchmarks/bench_batch.py --fields 20      # a quick run
+    python tests/benchmarks/bench_batch.py --dask tuned     # one Dask run, tuned settings
 
 Each invented field is a 1 km x 1 km square in UTM zone 16N (40,000 cells at 5 m) with
 100 grid samples (100 m apart, jittered) whose values follow the demo's analytic soil
@@ -139,7 +140,9 @@ def main() -> None:
                         help="fields run with --maps all to time the pictures (3)")
     parser.add_argument("--repeats", type=int, default=2,
                         help="repeats of each maps setting for the picture times (2)")
-    parser.add_argument("--no-dask", action="store_true", help="skip the Dask cluster run")
+    parser.add_argument("--no-dask", action="store_true", help="skip the Dask cluster runs")
+    parser.add_argument("--dask", choices=("both", "defaults", "tuned"), default="both",
+                        help="which Dask cluster settings to run (both)")
     parser.add_argument("--keep", type=Path, help="write everything here and keep it")
     args = parser.parse_args()
     sys.stdout.reconfigure(line_buffering=True)
@@ -164,7 +167,9 @@ def main() -> None:
             import dask
             from distributed import LocalCluster
 
-            for label, options in DASK_VARIANTS.items():
+            variants = {label: options for label, options in DASK_VARIANTS.items()
+                        if args.dask == "both" or f"({args.dask})" in label}
+            for label, options in variants.items():
                 saved = dict(os.environ)  # a Nanny writes its pre-spawn-environ into ours
                 with dask.config.set(options):
                     t = time.perf_counter()

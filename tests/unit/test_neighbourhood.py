@@ -199,6 +199,38 @@ def test_updated_factors_match_fresh_factorisations():
         np.testing.assert_allclose(a, b, atol=1e-9)
 
 
+
+@pytest.mark.parametrize("layout", ["lattice", "scattered"])
+def test_compiled_kernel_picks_the_same_sets_as_the_exact_search(layout):
+    # common practice, no source: the compiled kernel ranks each target's candidates
+    # itself (a band around the previous target's k-th distance, else a quickselect); on a
+    # lattice of samples many are equally distant, and a set cut differently at the k-th
+    # place changes the estimate.  The numpy path takes the exact KD-tree search.
+    if not numba_available():
+        pytest.skip("numba not installed")
+    rng = np.random.default_rng(11)
+    g = np.arange(0.0, 200.0, 10.0)
+    lattice = np.column_stack([a.ravel() for a in np.meshgrid(g, g)])
+    xy = {"lattice": lattice[rng.permutation(lattice.shape[0])[:360]],
+          "scattered": rng.random((400, 2)) * 200.0}[layout]
+    z = np.sin(xy[:, 0] / 40.0) + np.cos(xy[:, 1] / 30.0) + rng.normal(0, 0.1, xy.shape[0])
+    c = np.arange(-5.0, 205.0, 2.5)
+    cells = np.column_stack([a.ravel() for a in np.meshgrid(c, c)])
+    targets = np.vstack([cells, rng.random((500, 2)) * 220.0 - 10.0, xy[:40] + 5.0])
+    model = VariogramModel("exponential", 0.05, 1.0, 80.0)
+    for k in (1, 4, 12, 33):
+        for radius in (None, 25.0):
+            fast = local_ordinary_kriging(xy, z, targets, model, k, radius, engine="numba")
+            exact = local_ordinary_kriging(xy, z, targets, model, k, radius, engine="numpy")
+            for a, b in zip(fast[:3], exact[:3], strict=True):
+                np.testing.assert_allclose(a, b, atol=1e-9)
+            assert fast[3].no_neighbours == exact[3].no_neighbours
+    fast = local_leave_one_out(xy, z, model, 12, engine="numba")
+    exact = local_leave_one_out(xy, z, model, 12, engine="numpy")
+    for a, b in zip(fast[:2], exact[:2], strict=True):
+        np.testing.assert_allclose(a, b, atol=1e-9)
+
+
 def _nearest_by_brute_force(points, queries, k, radius=None, exclude=None):
     """The k nearest by squared distance dx*dx + dy*dy, then index; -1 / inf padding."""
     dx = points[None, :, 0] - queries[:, None, 0]
@@ -297,3 +329,21 @@ def test_local_kriging_numpy_path_uses_the_neighbour_search(field, monkeypatch):
     local_ordinary_kriging(xy, z, targets, VariogramModel("spherical", 0.1, 1.0, 300.0), 8,
                            engine="numpy", block=1000)
     assert calls == [1000, 1000, 1000]
+
+
+def test_compiled_z_order_is_a_stable_morton_sort():
+    # common practice, no source: Morton order interleaves the bits of the cell column
+    # (even bits) and row (odd bits); equal keys keep their input order.
+    if not numba_available():
+        pytest.skip("numba not installed")
+    from pmap.geostats._local_numba import z_order
+
+    rng = np.random.default_rng(5)
+    pts = np.vstack([rng.random((3000, 2)) * 5000.0, np.repeat([[10.0, 10.0]], 5, axis=0)])
+    cell = 0.7
+    q = np.floor((pts - pts.min(axis=0)) / cell).astype(np.int64)
+    key = np.zeros(len(pts), dtype=np.int64)
+    for bit in range(21):
+        key |= ((q[:, 0] >> bit) & 1) << (2 * bit)
+        key |= ((q[:, 1] >> bit) & 1) << (2 * bit + 1)
+    np.testing.assert_array_equal(z_order(pts, cell), np.argsort(key, kind="stable"))
