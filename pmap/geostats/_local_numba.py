@@ -43,7 +43,7 @@ _CHUNK = 64
 _CHUNK_CANDIDATES = 4
 # Candidates near the previous target's k-th distance ranked directly (else quickselect).
 _BAND = 32
-_FAST = {"reassoc", "contract", "arcp"}
+_FAST = {"reassoc", "contract"}
 
 
 @njit(cache=True, inline="always")
@@ -234,7 +234,8 @@ def _select_nearest(tx, ty, self_index, cand, ccx, ccy, nc, k, radius2, prev_d2k
     previous target, ``prev_d2k`` (squared; negative if none), moves by at most ``step``
     (m, the distance between the two targets): only the candidates in that band are
     ranked, and a quickselect over all of them is the fallback, so the result is exact
-    either way.  Returns (count, squared k-th distance or -1 when fewer were found).
+    either way.  Returns (count, squared k-th distance or -1 when fewer were found,
+    squared distance of the nearest and its index, the lowest index among equals).
     """
     for i in range(nc):
         dx = ccx[i] - tx
@@ -251,13 +252,18 @@ def _select_nearest(tx, ty, self_index, cand, ccx, ccy, nc, k, radius2, prev_d2k
     n_valid = 0
     for i in range(nc):
         n_valid += d2s[i] < np.inf
+    kk = 0
+    dmin = np.inf
+    jmin = -1
     if n_valid <= k:
-        kk = 0
         for i in range(nc):
             if d2s[i] < np.inf:
                 members[kk] = cand[i]
                 kk += 1
-        return kk, -1.0
+                if d2s[i] < dmin:
+                    dmin = d2s[i]
+                    jmin = cand[i]
+        return kk, -1.0, dmin, jmin
     found = False
     thr = 0.0
     thr_j = 0
@@ -301,13 +307,15 @@ def _select_nearest(tx, ty, self_index, cand, ccx, ccy, nc, k, radius2, prev_d2k
                 if need == 0:
                     thr_j = cand[i]
                     break
-    kk = 0
     for i in range(nc):
         d2 = d2s[i]
         if d2 < thr or (d2 == thr and cand[i] <= thr_j):
             members[kk] = cand[i]
             kk += 1
-    return kk, thr
+            if d2 < dmin:
+                dmin = d2
+                jmin = cand[i]
+    return kk, thr, dmin, jmin
 
 
 @njit(cache=True, fastmath=_FAST)
@@ -496,17 +504,9 @@ def krige_targets(xy, z, txy, order, self_index, bstart, border, b0x, b0y, bsize
             step = np.sqrt((tx - px) ** 2 + (ty - py) ** 2)
             px = tx
             py = ty
-            kk, d2k = _select_nearest(tx, ty, self_index[t], cand, ccx, ccy, nc, k, radius2,
-                                      d2k, step, d2s, scratch, band_d, band_i, members)
-            dmin = np.inf
-            jmin = -1
-            for i in range(kk):                         # the nearest, lowest index first
-                dx = xy[members[i], 0] - tx
-                dy = xy[members[i], 1] - ty
-                d2 = dx * dx + dy * dy
-                if d2 < dmin:
-                    dmin = d2
-                    jmin = members[i]
+            kk, d2k, dmin, jmin = _select_nearest(tx, ty, self_index[t], cand, ccx, ccy, nc, k,
+                                                  radius2, d2k, step, d2s, scratch, band_d,
+                                                  band_i, members)
             if kk == 0:
                 est[t] = np.nan
                 var[t] = np.nan

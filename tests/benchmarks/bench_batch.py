@@ -44,8 +44,8 @@ SPACING_M = 100.0
 #: threshold, so every large numpy array is mapped and zeroed afresh) and the workers'
 #: sampling profiler (every 10 ms it walks the task thread's stack under the GIL).
 DASK_VARIANTS = {
-    "Dask LocalCluster, 2 workers (defaults)": {},
-    "Dask LocalCluster, 2 workers (tuned)": {
+    "defaults": {},
+    "tuned": {
         "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_": None,
         "distributed.worker.profile.enabled": False,
     },
@@ -167,9 +167,10 @@ def main() -> None:
             import dask
             from distributed import LocalCluster
 
-            variants = {label: options for label, options in DASK_VARIANTS.items()
-                        if args.dask == "both" or f"({args.dask})" in label}
-            for label, options in variants.items():
+            for name, options in DASK_VARIANTS.items():
+                if args.dask not in ("both", name):
+                    continue
+                label = f"Dask LocalCluster, 2 workers ({name})"
                 saved = dict(os.environ)  # a Nanny writes its pre-spawn-environ into ours
                 with dask.config.set(options):
                     t = time.perf_counter()

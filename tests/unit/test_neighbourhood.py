@@ -331,6 +331,19 @@ def test_local_kriging_numpy_path_uses_the_neighbour_search(field, monkeypatch):
     assert calls == [1000, 1000, 1000]
 
 
+@pytest.mark.parametrize("engine", ENGINES)
+def test_a_target_on_a_sample_takes_its_value_exactly(field, engine):
+    # common practice, no source: ordinary kriging with gamma(0) = 0 is an exact
+    # interpolator; a target on a sample is given that sample's value and variance 0
+    # directly, not through a solve that would return them to round-off only.
+    xy, z, _ = field
+    model = VariogramModel("spherical", 0.05, 0.9, 300.0)
+    est, var, mu, _ = local_ordinary_kriging(xy, z, xy[:50], model, 16, engine=engine)
+    np.testing.assert_array_equal(est, z[:50])
+    np.testing.assert_array_equal(var, 0.0)
+    np.testing.assert_array_equal(mu, 0.0)
+
+
 def test_compiled_z_order_is_a_stable_morton_sort():
     # common practice, no source: Morton order interleaves the bits of the cell column
     # (even bits) and row (odd bits); equal keys keep their input order.
