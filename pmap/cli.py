@@ -303,6 +303,76 @@ def batch(fields: Path, out: Path, workers: int | None, scheduler: str | None,
     sys.exit(result.exit_code)
 
 
+@cli.command()
+@click.argument("samples", type=click.Path(path_type=Path, dir_okay=False))
+@click.option("--boundary", "-b", required=True, type=click.Path(path_type=Path, dir_okay=False),
+              help="The region's boundary: one or more polygons (dissolved into one region).")
+@click.option("--out", "-o", required=True, type=click.Path(path_type=Path, file_okay=False),
+              help="Output directory: rasters/<layer>.tif, summary.json, manifest.json.")
+@click.option("--config", "-c", "config_path", type=click.Path(path_type=Path, dir_okay=False),
+              help="TOML configuration (see docs/configuration.md).")
+@click.option("--crs", help="CRS of projected x/y sample columns, e.g. EPSG:32616 (sets grid.crs).")
+@click.option("--cell-size", type=float, help="Output cell size in metres (sets grid.cell_size_m).")
+@click.option("--tile", "tile_cells", type=click.IntRange(min=16), default=1024, show_default=True,
+              help="Tile edge in cells; memory grows with its square.")
+@click.option("--workers", "-j", type=click.IntRange(min=1),
+              help="Local worker processes (default: the number of CPUs; 1 = this process).")
+@click.option("--scheduler", help="Run the tiles on a Dask cluster: its scheduler address.")
+@click.option("--overwrite", is_flag=True, help="Replace OUT if it is a previous pmap output.")
+def region(samples: Path, boundary: Path, out: Path, config_path: Path | None, crs: str | None,
+           cell_size: float | None, tile_cells: int, workers: int | None,
+           scheduler: str | None, overwrite: bool) -> None:
+    """Map a region too large for one grid in memory (a farm at 1 m), tile by tile.
+
+    Writes the kriged properties with their variance and the soil model's pools and
+    fixation risk as tiled GeoTIFFs; no rates (make those per field with `pmap run` or
+    `pmap batch`).  The variograms are fitted once on all the samples.
+    """
+    from pmap.config import load_config
+    from pmap.region import run_region
+
+    if workers is not None and scheduler:
+        raise click.UsageError("--workers sets local processes; on a Dask cluster its "
+                               "workers run the tiles")
+    config = _run_safely(load_config, config_path)
+    changes = {k: v for k, v in {"crs": crs, "cell_size_m": cell_size}.items() if v is not None}
+    if changes:
+        config = _run_safely(config.replace, "grid", **changes)
+    quiet = click.get_current_context().find_root().params.get("quiet")
+    tty = sys.stderr.isatty()
+    shown = [0]
+
+    def progress(p) -> None:
+        step = max(1, p.planned // 10)
+        if quiet or not (tty or p.written % step == 0 or p.written == p.planned):
+            return
+        eta = f", about {p.eta_s / 60:.1f} min left" if p.eta_s is not None else ""
+        line = f"pmap: region: {p.written}/{p.planned} tiles written{eta}"
+        click.echo(("\r" + line.ljust(shown[0])) if tty else line, err=True,
+                   nl=not tty or p.written == p.planned)
+        shown[0] = len(line)
+
+    result = _run_safely(run_region, samples, boundary, out, config, tile_cells=tile_cells,
+                         workers=workers, scheduler=scheduler, overwrite=overwrite,
+                         config_path=config_path, progress=progress)
+    click.echo(f"CAUTION: {CAUTIONS_SHORT}", err=True)
+    if quiet:
+        return
+    info = result.summary["region"]
+    click.echo(f"wrote {len(result.outputs)} outputs to {out}")
+    click.echo(f"  {info['width']:,} x {info['height']:,} cells of {info['cell_size_m']:g} m, "
+               f"{info['cells_inside']:,} inside ({info['area_ha']:,.1f} ha), "
+               f"{result.tiles} tiles")
+    calibration = result.summary["soil_model"]["calibration"]
+    if calibration.get("status") != "calibrated":
+        click.echo("  soil model NOT CALIBRATED: its layers use the default parameters "
+                   "(starting values, not a calibration for this region)")
+    for name, fit in result.fits.items():
+        cv = fit.cv
+        click.echo(f"  {name:<15} {fit.model.kind:<11} cross-validation RMSE {cv.rmse:.3g}, "
+                   f"MSDR {cv.msdr:.2f}")
+
+
 @cli.command("config")
 def config_reference() -> None:
     """Print every configuration key with its unit, default and source (Markdown)."""

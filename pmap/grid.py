@@ -21,6 +21,7 @@ __all__ = [
     "BYTES_PER_CELL",
     "BASE_BYTES",
     "estimate_grid",
+    "snap_bounds",
     "estimate_memory_bytes",
 ]
 
@@ -40,7 +41,7 @@ BYTES_PER_CELL: int = 64 * 8
 BASE_BYTES: int = 336 * 2**20
 
 
-def _snap(
+def snap_bounds(
     bounds: tuple[float, float, float, float], cell_size: float
 ) -> tuple[float, float, int, int]:
     """Origin (x0, y0) snapped outward to multiples of ``cell_size``, and width, height."""
@@ -73,7 +74,7 @@ def estimate_grid(
     width, height, n_cells : int
         Columns, rows and their product (cells of the whole grid, inside the field or not).
     """
-    _, _, width, height = _snap(bounds, cell_size)
+    _, _, width, height = snap_bounds(bounds, cell_size)
     return width, height, width * height
 
 
@@ -143,7 +144,7 @@ class GridSpec:
         The origin is snapped outward to a multiple of ``cell_size`` so that grids of
         neighbouring fields line up.  Without ``mask`` every cell counts as inside.
         """
-        x0, y0, width, height = _snap(bounds, cell_size)
+        x0, y0, width, height = snap_bounds(bounds, cell_size)
         transform = Affine(cell_size, 0.0, x0, 0.0, -cell_size, y0)
         if mask is None:
             mask = np.ones((height, width), dtype=bool)

@@ -35,15 +35,15 @@ from pmap.prescribe.clustering import cluster_zones, zone_means, zone_rates
 from pmap.prescribe.interpretation import InterpretationTable
 from pmap.prescribe.patches import clean_zones, min_cells_for_area, min_width_cells
 from pmap.prescribe.rates import RateRule, resolve_interpretation
-from pmap.results import FieldInputs, FieldResult
+from pmap.results import FieldInputs, FieldResult, IngestedField
 from pmap.soil.availability import SoilPools
 from pmap.soil.conversions import convert_soil_test
 from pmap.soil.model import SoilInputs, recent_p_mg_kg, soil_model
 
-__all__ = ["FieldInputs", "FieldResult", "prepare_inputs", "run_field", "run_each_feature",
+__all__ = ["FieldInputs", "FieldResult", "IngestedField", "ingest_field", "prepare_inputs", "run_field", "run_each_feature",
            "krige_properties",
            "require_phosphorus", "driver_method", "rate_rule_for", "interpretation_for",
-           "KRIGED_PROPERTIES"]
+           "KRIGED_PROPERTIES", "PROPERTY_LIMITS", "soil_inputs_on_grid", "calibrate_in_run"]
 
 log = logging.getLogger(__name__)
 
@@ -59,10 +59,10 @@ KRIGED_PROPERTIES: tuple[str, ...] = (
 _ESSENTIAL = ("ph", "total_p", "stp")
 
 
-def prepare_inputs(
+def ingest_field(
     samples_path: str | Path, boundary_path: str | Path, config: FieldConfig
-) -> FieldInputs:
-    """Read, check and reproject the samples and the boundary; fix the run's grid."""
+) -> IngestedField:
+    """Read, check and reproject the samples and the boundary into the run's working CRS."""
     user_crs = normalise_crs(config.grid.crs) if config.grid.crs else None
     outline, outline_crs = boundary_io.read_boundary(
         boundary_path, crs=user_crs, feature=config.field.boundary_feature or None,
@@ -107,10 +107,20 @@ def prepare_inputs(
             stacklevel=2,
         )
         samples = samples.subset(inside)
+    return IngestedField(samples, boundary, working_crs, n_read, dropped, notes, crs_choice)
+
+
+def prepare_inputs(
+    samples_path: str | Path, boundary_path: str | Path, config: FieldConfig
+) -> FieldInputs:
+    """Read, check and reproject the samples and the boundary; fix the run's grid."""
+    field = ingest_field(samples_path, boundary_path, config)
+    samples, boundary, working_crs = field.samples, field.boundary, field.crs
     grid = boundary_io.grid_for_boundary(
         boundary, working_crs, config.grid.cell_size_m, max_cells=config.grid.max_cells,
         n_samples=len(samples), chunk_size=config.kriging.chunk_size)
-    return FieldInputs(samples, boundary, grid, n_read, dropped, notes, crs_choice)
+    return FieldInputs(samples, boundary, grid, field.n_read, field.dropped_outside, field.notes,
+                       field.crs_choice)
 
 
 def _covariates(samples: SampleTable, targets: np.ndarray, config: FieldConfig,
@@ -158,7 +168,7 @@ def krige_properties(
         try:
             results[name] = interpolate(
                 name, samples.coords[ok], values[ok], targets, config.kriging,
-                ids=samples.ids[ok], rows=samples.rows[ok], limits=_LIMITS.get(name),
+                ids=samples.ids[ok], rows=samples.rows[ok], limits=PROPERTY_LIMITS.get(name),
                 covariates={c: (at_samples[ok], at_targets)
                             for c, (at_samples, at_targets) in covariates.items()},
             )
@@ -339,7 +349,7 @@ def _compute(inputs: FieldInputs, config: FieldConfig, out_dir: Path) -> FieldRe
     # Soil model on the kriged layers, calibrated to the lab's pairs where they exist.
     ph = estimates["ph"]
     partition, calibration, calibration_record = calibrate_in_run(inputs.samples, config, rule)
-    soil_inputs = _soil_inputs(estimates, grid, config)
+    soil_inputs = soil_inputs_on_grid(estimates, grid, config)
     model = soil_model(ph, estimates.get("total_p"), soil_inputs, partition, config.fixation)
     pools, risk = model.pools, model.risk
     for note in model.notes:
@@ -682,7 +692,7 @@ def _polygons_for(
 #: Physical limits of kriged properties (their units), passed to interpolate(limits=...):
 #: ordinary kriging can overshoot them near the edges of the data (e.g. CaCO3 below 0 %
 #: beside calcareous patches), and the clipped estimate is the one every output uses.
-_LIMITS: dict[str, tuple[float, float]] = {
+PROPERTY_LIMITS: dict[str, tuple[float, float]] = {
     "ph": (0.0, 14.0), "total_p": (0.0, np.inf), "stp": (0.0, np.inf), "caco3": (0.0, 100.0),
     "clay": (0.0, 100.0), "base_saturation": (0.0, 100.0), "om": (0.0, 100.0),
     "ca": (0.0, np.inf), "fe": (0.0, np.inf), "al": (0.0, np.inf), "buffer_ph": (0.0, 14.0),
@@ -705,7 +715,7 @@ def layer_thickness_cm(depth: str) -> float:
     raise ConfigError(f"field.sampling_depth_cm must read like '0-15' (cm), got {depth!r}")
 
 
-def _soil_inputs(estimates: dict[str, np.ndarray], grid: GridSpec,
+def soil_inputs_on_grid(estimates: dict[str, np.ndarray], grid: GridSpec,
                  config: FieldConfig) -> SoilInputs:
     """The soil model's per-cell inputs: kriged layers, soil-map and as-applied rasters."""
     from pmap.io.rasters import read_onto_grid
@@ -730,7 +740,7 @@ def _soil_inputs(estimates: dict[str, np.ndarray], grid: GridSpec,
 
 
 def _physical_estimates(kriged: dict[str, Interpolation]) -> dict[str, np.ndarray]:
-    """The kriged estimate per property, already clipped to ``_LIMITS`` by ``interpolate``."""
+    """The kriged estimate per property, already clipped to ``PROPERTY_LIMITS`` by ``interpolate``."""
     return {name: interp.result.estimate for name, interp in kriged.items()}
 
 
@@ -813,7 +823,7 @@ def model_uncertainty(
         def one(interp: Interpolation) -> np.ndarray:
             mean, variance = interp.kriged_moments()
             z = mean + np.sqrt(np.maximum(variance, 0.0)) * rng.standard_normal(mean.shape)
-            lo, hi = _LIMITS.get(interp.name, (-np.inf, np.inf))
+            lo, hi = PROPERTY_LIMITS.get(interp.name, (-np.inf, np.inf))
             return np.clip(np.exp(z) if interp.log else z, lo, hi)
 
         draws = ((one(ph_interp), one(tp)) for _ in range(n))
@@ -937,7 +947,7 @@ def _lime_and_environment(
 def _soil_inputs_at_samples(samples: SampleTable, config: FieldConfig) -> dict[str, Any]:
     """The soil map's weathering class and the recent P additions at each sample.
 
-    The same rasters and field-wide values as :func:`_soil_inputs` gives the map, read at
+    The same rasters and field-wide values as :func:`soil_inputs_on_grid` gives the map, read at
     the sample points, so that calibration sees the model the run applies.  The labile
     share of fresh P is the EPIC PSP of new P at the starting parameters.
     """

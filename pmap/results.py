@@ -21,7 +21,24 @@ from pmap.prescribe import prescription as rx
 from pmap.prescribe.interpretation import InterpretationTable
 from pmap.prescribe.rates import RateRule
 
-__all__ = ["FieldInputs", "FieldResult"]
+__all__ = ["FieldInputs", "FieldResult", "IngestedField"]
+
+
+@dataclass(frozen=True)
+class IngestedField:
+    """Checked samples and boundary in the working CRS ``crs``, before any grid is fixed.
+
+    The fields mean what they mean in :class:`FieldInputs`; a tiled region
+    (:mod:`pmap.region`) starts from this, since its grid is never held whole.
+    """
+
+    samples: SampleTable
+    boundary: Any  # shapely (Multi)Polygon in crs
+    crs: str
+    n_read: int
+    dropped_outside: tuple[str, ...]
+    notes: tuple[str, ...] = ()
+    crs_choice: dict[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True)

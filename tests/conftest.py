@@ -40,3 +40,18 @@ def demo_run(tmp_path_factory):
         warnings.simplefilter("ignore")
         result = run_demo(out)
     return result, out
+
+
+@pytest.fixture()
+def dask_cluster():
+    """A 2-worker Dask LocalCluster (processes, one thread each), closed after the test."""
+    distributed = pytest.importorskip("distributed")
+    saved = dict(os.environ)  # a Nanny writes its pre-spawn-environ into this process's
+    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                       dashboard_address=None)
+    try:
+        yield cluster
+    finally:
+        cluster.close()
+        os.environ.clear()
+        os.environ.update(saved)

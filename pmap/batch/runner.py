@@ -41,6 +41,7 @@ __all__ = [
     "FieldFormatter",
     "field_logger",
     "thread_env",
+    "one_thread_numerics",
     "init_worker",
     "run_task",
     "base_record",
@@ -160,7 +161,7 @@ def thread_env() -> Iterator[None]:
 
 
 @contextmanager
-def _one_thread() -> Iterator[None]:
+def one_thread_numerics() -> Iterator[None]:
     """Numeric thread pools limited to one thread for the block (threadpoolctl, numba)."""
     import sys
 
@@ -282,7 +283,7 @@ def run_task(task: Mapping[str, Any]) -> dict[str, Any]:
             import pmap.pipeline  # noqa: F401 - timed: the start-up a fresh worker pays
 
             record["timings"]["import"] = time.perf_counter() - t0
-            with _one_thread():  # after the import: threadpoolctl limits loaded libraries
+            with one_thread_numerics():  # after the import: threadpoolctl limits loaded libraries
                 t1 = time.perf_counter()
                 with warnings.catch_warnings(record=True) as caught:
                     warnings.simplefilter("always")

@@ -28,6 +28,7 @@ from pmap.geostats.interpolate import (
     KrigingSettings,
     choose_log,
     interpolate,
+    krige_at,
     nugget_floor,
     sample_skewness,
 )
@@ -89,6 +90,7 @@ __all__ = [
     "KrigingSettings",
     "Interpolation",
     "interpolate",
+    "krige_at",
     "choose_log",
     "sample_skewness",
     "nugget_floor",

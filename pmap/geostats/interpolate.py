@@ -82,8 +82,8 @@ from pmap.geostats.variogram import (
     weighted_sse,
 )
 
-__all__ = ["KrigingSettings", "Interpolation", "interpolate", "nugget_floor", "sample_skewness",
-           "choose_log", "LOGARITHMIC"]
+__all__ = ["KrigingSettings", "Interpolation", "interpolate", "krige_at",
+           "nugget_floor", "sample_skewness", "choose_log", "LOGARITHMIC"]
 
 _LOG_CHOICES = ("auto", "always", "never")
 # Sample skewness above which "auto" kriges the logarithm.
@@ -1171,3 +1171,75 @@ def interpolate(
                          neighbourhood=fit.neighbourhood, k_fold=fit.k_fold,
                          selection=fit.selection, variogram_samples=fit.variogram_samples,
                          sample_coords=coords, sample_values=values)
+
+
+def krige_at(
+    interp: Interpolation,
+    targets: np.ndarray,
+    *,
+    limits: tuple[float, float] | None = None,
+    chunk_size: int = 20_000,
+    system: KrigingSystem | None = None,
+) -> KrigingResult:
+    """Krige more ``targets`` (m, shape (m, 2)) with what :func:`interpolate` chose.
+
+    The same samples, variogram, transform and neighbourhood as ``interp``, so targets
+    kriged in pieces (tiles of a region) get the values they would get all at once.
+    Estimates are clipped to ``limits`` as :func:`interpolate` clips them.
+
+    Parameters
+    ----------
+    interp : Interpolation
+        A fit from :func:`interpolate` (with ``sample_coords`` and ``sample_values``).
+    targets : numpy.ndarray, shape (m, 2)
+        Prediction points, m.
+    limits : (float, float), optional
+        Physical range of the property (its units).
+    chunk_size : int
+        Targets per block of global kriging.
+    system : KrigingSystem, optional
+        The factorised global system of ``interp`` (:meth:`KrigingSystem.factorise` of its
+        samples, kriged values and model), to reuse across calls; built when needed.
+
+    Returns
+    -------
+    KrigingResult
+        Estimates and variances in the property's units (lognormal back-transform when
+        ``interp.log``).
+
+    Raises
+    ------
+    ValueError
+        ``interp`` holds no samples, or its model was chosen with a drift (kriging with
+        drift needs the drift at the targets, which this function does not take).
+    """
+    targets = np.asarray(targets, dtype=float).reshape(-1, 2)
+    m = targets.shape[0]
+    if interp.kind == "constant":
+        level = float(interp.sample_values[0]) if interp.sample_values is not None else np.nan
+        estimate = np.full(m, level)
+        if limits is not None:
+            estimate, _ = clip_to_limits(estimate, limits)
+        return KrigingResult(estimate, np.zeros(m), np.zeros(m))
+    if interp.sample_coords is None or interp.sample_values is None:
+        raise ValueError(f"{interp.name}: the fit holds no samples to krige from")
+    if "kriging with drift" in interp.selection:
+        raise ValueError(f"{interp.name}: the model was chosen with a drift; krige_at kriges "
+                         "without one")
+    kriged = np.log(interp.sample_values) if interp.log else interp.sample_values
+    hood = interp.neighbourhood
+    if hood is None or hood.neighbours is None:
+        if system is None:
+            system = KrigingSystem.factorise(interp.sample_coords, kriged, interp.model)
+        raw = system.predict(targets, chunk_size)
+    else:
+        raw = ordinary_kriging(interp.sample_coords, kriged, targets, interp.model,
+                               hood.neighbours, hood.radius, chunk_size=chunk_size)
+    if interp.log:
+        estimate, variance = lognormal_back_transform(raw.estimate, raw.variance, raw.lagrange)
+        result = KrigingResult(estimate, variance, raw.lagrange)
+    else:
+        result = raw
+    if limits is not None:
+        result = replace(result, estimate=clip_to_limits(result.estimate, limits)[0])
+    return result

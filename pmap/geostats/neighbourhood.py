@@ -529,6 +529,9 @@ def local_ordinary_kriging(
     unit = model.with_sill_scaled(1.0 / scale)
     xy = unit.isotropic_coords(coords)
     txy = unit.isotropic_coords(targets)
+    if m == 0:  # nothing to krige (a fit without a map, as in pmap check)
+        empty = np.empty(0)
+        return empty, empty.copy(), empty.copy(), LocalSystems(0, 0, 0, 0)
     if _use_numba(engine, unit.kind):
         return _numba_path(xy, values, txy, unit, scale, k, radius, exclude_self)
     search = NeighbourSearch(xy, k, radius, engine="numpy")

@@ -24,7 +24,7 @@ from pmap.errors import ConfigError, InputError
 from pmap.grid import NODATA, GridSpec
 from pmap.io.crs import normalise_crs, to_pyproj
 
-__all__ = ["CLASS_NODATA", "class_colours", "write_cog", "RasterInfo", "read_raster", "pmap_version",
+__all__ = ["CLASS_NODATA", "class_colours", "write_cog", "TiledGeoTIFF", "RasterInfo", "read_raster", "pmap_version",
            "read_onto_grid", "sample_at_points"]
 
 #: Value written for cells outside the field in class (uint8) rasters.
@@ -353,3 +353,100 @@ def sample_at_points(path: str | Path, coords: np.ndarray, crs: Any) -> np.ndarr
     except RasterioError as exc:
         raise InputError(f"{path}: cannot read the raster ({exc}); give a GeoTIFF") from exc
     return out
+
+
+class TiledGeoTIFF:
+    """One band GeoTIFF written window by window, for grids too large to hold in memory.
+
+    Tiled in :attr:`BLOCK` x :attr:`BLOCK` blocks, DEFLATE-compressed (with the
+    floating-point predictor for float bands), BigTIFF when the file could pass 4 GB.
+    Float bands are float32 with nodata :data:`NODATA` (NaN is written as nodata), class
+    bands uint8 with nodata 0, a colour table and ``CLASS_<n>`` tags; the provenance tags
+    and ``PMAP_VERSION`` are written as by :func:`write_cog`.  Blocks never written read
+    as nodata.  :meth:`close` adds the overviews.  The caller writes into a staging
+    directory (:mod:`pmap.io.publish`): a file is complete only once closed.
+
+    Parameters
+    ----------
+    path : path
+        The file to create (must not exist).
+    crs, transform, width, height
+        The whole grid: projected CRS, upper-left transform, columns and rows.
+    is_class : bool
+        uint8 classes rather than float32 values.
+    description, unit, tags, class_labels, colormap
+        As for :func:`write_cog`.
+    """
+
+    BLOCK: int = 512
+
+    def __init__(self, path: str | Path, *, crs: str, transform: Affine, width: int,
+                 height: int, is_class: bool, description: str, unit: str,
+                 tags: Mapping[str, str] | None = None,
+                 class_labels: Mapping[int, str] | None = None,
+                 colormap: Mapping[int, tuple[int, int, int, int]] | None = None):
+        import rasterio
+
+        self.path = Path(path)
+        self.is_class = is_class
+        self._resampling = "nearest" if is_class else "average"
+        options: dict[str, Any] = {
+            "tiled": True, "blockxsize": self.BLOCK, "blockysize": self.BLOCK,
+            "compress": "deflate", "bigtiff": "IF_SAFER", "sparse_ok": False,
+        }
+        if not is_class:
+            options["predictor"] = 3
+        self._dst = rasterio.open(
+            self.path, "w", driver="GTiff", width=width, height=height, count=1,
+            dtype="uint8" if is_class else "float32",
+            crs=rasterio.crs.CRS.from_user_input(normalise_crs(crs)), transform=transform,
+            nodata=CLASS_NODATA if is_class else NODATA, **options)
+        all_tags = {str(k): str(v) for k, v in (tags or {}).items()}
+        all_tags["PMAP_VERSION"] = pmap_version()
+        for cid, label in (class_labels or {}).items():
+            all_tags[f"CLASS_{int(cid)}"] = str(label)
+        self._dst.set_band_description(1, description)
+        self._dst.set_band_unit(1, unit)
+        self._dst.update_tags(**all_tags)
+        if is_class:
+            if colormap is None and class_labels:
+                colormap = class_colours(sorted(class_labels))
+            if colormap:
+                self._dst.write_colormap(
+                    1, {int(k): tuple(int(c) for c in v) for k, v in colormap.items()})
+
+    def write(self, array: np.ndarray, row0: int, col0: int) -> None:
+        """Write ``array`` (2-D) with its upper-left cell at row ``row0``, column ``col0``."""
+        from rasterio.windows import Window
+
+        array = np.asarray(array)
+        if self.is_class:
+            data = array.astype(np.uint8)
+        else:
+            data = np.asarray(array, dtype=np.float32)
+            data = np.where(np.isfinite(data), data, np.float32(NODATA)).astype(np.float32)
+        height, width = data.shape
+        self._dst.write(data, 1, window=Window(col0, row0, width, height))
+
+    def close(self, overviews: bool = True) -> Path:
+        """Finish the file: overviews (halving until under one block), then close it."""
+        import rasterio
+        from rasterio.enums import Resampling
+
+        self._dst.close()
+        if overviews:
+            with rasterio.open(self.path, "r+") as dst:
+                factors = []
+                size = max(dst.width, dst.height)
+                while size > self.BLOCK:
+                    factors.append(2 ** (len(factors) + 1))
+                    size //= 2
+                if factors:
+                    dst.build_overviews(factors, Resampling[self._resampling])
+                    dst.update_tags(ns="rio_overview", resampling=self._resampling)
+        return self.path
+
+    def abort(self) -> None:
+        """Close without overviews (the staging directory is thrown away after)."""
+        if not self._dst.closed:
+            self._dst.close()

@@ -294,20 +294,6 @@ def test_changed_samples_or_modified_output_are_not_done(first_batch, tmp_path):
 # 3. a Dask cluster runs the same task and writes the same bytes
 
 
-@pytest.fixture()
-def dask_cluster():
-    distributed = pytest.importorskip("distributed")
-    saved = dict(os.environ)  # a Nanny writes its pre-spawn-environ into this process's
-    cluster = distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
-                                       dashboard_address=None)
-    try:
-        yield cluster
-    finally:
-        cluster.close()
-        os.environ.clear()
-        os.environ.update(saved)
-
-
 def test_dask_cluster_gives_the_same_bytes_as_local_processes(tmp_path, dask_cluster):
     import distributed
 

@@ -177,7 +177,7 @@ def test_available_p_uncertainty_matches_first_order_propagation(lab_run):
     # common practice, no source: first-order (delta-method) propagation of the kriging
     # standard deviations of pH and total P through the soil model, an independent way to
     # get the per-cell standard deviation the run estimates by drawing
-    from pmap.pipeline import _soil_inputs
+    from pmap.pipeline import soil_inputs_on_grid
     from pmap.soil.model import soil_model
 
     inside = lab_run.grid.mask
@@ -187,7 +187,7 @@ def test_available_p_uncertainty_matches_first_order_propagation(lab_run):
     sd_tp = np.sqrt(lab_run.layers["total_p_variance"][inside].astype(float))
     estimates = {name: lab_run.layers[name][inside].astype(float)
                  for name in lab_run.interpolations}
-    inputs = _soil_inputs(estimates, lab_run.grid, lab_run.config)
+    inputs = soil_inputs_on_grid(estimates, lab_run.grid, lab_run.config)
     partition = lab_run.calibration.params
 
     def available(p, t):

@@ -360,3 +360,14 @@ def test_compiled_z_order_is_a_stable_morton_sort():
         key |= ((q[:, 0] >> bit) & 1) << (2 * bit)
         key |= ((q[:, 1] >> bit) & 1) << (2 * bit + 1)
     np.testing.assert_array_equal(z_order(pts, cell), np.argsort(key, kind="stable"))
+
+
+@pytest.mark.parametrize("engine", ENGINES)
+def test_no_targets_give_empty_results(field, engine):
+    # common practice, no source: a fit with no map to draw (pmap check, a region's fit)
+    coords, values = field[0], field[1]
+    model = VariogramModel("spherical", 0.1, 1.0, 300.0)
+    est, var, mu, stats = local_ordinary_kriging(coords, values, np.empty((0, 2)), model, 8,
+                                                 engine=engine)
+    assert est.shape == var.shape == mu.shape == (0,)
+    assert stats.targets == 0
