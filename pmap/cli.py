@@ -313,7 +313,7 @@ def batch(fields: Path, out: Path, workers: int | None, scheduler: str | None,
               help="TOML configuration (see docs/configuration.md).")
 @click.option("--crs", help="CRS of projected x/y sample columns, e.g. EPSG:32616 (sets grid.crs).")
 @click.option("--cell-size", type=float, help="Output cell size in metres (sets grid.cell_size_m).")
-@click.option("--tile", "tile_cells", type=click.IntRange(min=16), default=1024, show_default=True,
+@click.option("--tile", "tile_cells", type=click.IntRange(min=16), default=512, show_default=True,
               help="Tile edge in cells; memory grows with its square.")
 @click.option("--workers", "-j", type=click.IntRange(min=1),
               help="Local worker processes (default: the number of CPUs; 1 = this process).")

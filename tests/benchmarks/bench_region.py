@@ -87,7 +87,7 @@ def main() -> None:
     parser.add_argument("--cell-size", type=float, default=1.0, help="cell size, m (1)")
     parser.add_argument("--samples", type=int, default=20_000, help="samples (20,000)")
     parser.add_argument("--workers", type=int, default=2, help="local workers (2)")
-    parser.add_argument("--tile", type=int, default=1024, help="tile edge, cells (1024)")
+    parser.add_argument("--tile", type=int, default=512, help="tile edge, cells (512)")
     parser.add_argument("--dask", action="store_true", help="tiles on a 2-worker LocalCluster")
     parser.add_argument("--keep", type=Path, help="write everything here and keep it")
     args = parser.parse_args()

@@ -528,3 +528,42 @@ def test_config_layers_key_by_key_in_order(tmp_path):
         assert [f.out_dir.name for f in plan.fields] == ["one", "two", "three"]
     finally:
         plan.close()
+
+
+def test_a_toml_table_lists_fields_with_dotted_keys_subtables_and_its_own_defaults(tmp_path):
+    make_field(tmp_path / "in", "F1", toml="")
+    make_field(tmp_path / "in", "F2", toml="")
+    (tmp_path / "batch.toml").write_text('[grid]\ncell_size_m = 40\n\n[rates]\ncrop = "wheat"\n')
+    (tmp_path / "fields.toml").write_text(
+        '[rates]\ncrop = "soybean"\n\n'
+        '[[fields]]\nname = "North 40"\nsamples = "in/F1/samples.csv"\n'
+        'boundary = "in/F1/boundary.geojson"\nrates.crop = "corn"\n\n'
+        '[[fields]]\nname = "Creek Bottom"\nsamples = "in/F2/samples.csv"\n'
+        'boundary = "in/F2/boundary.geojson"\n[fields.grid]\ncell_size_m = 30\n')
+    plan = plan_batch(tmp_path / "fields.toml", tmp_path / "out", maps="none")
+    try:
+        cfg = {f.name: f.config for f in plan.fields}
+        assert list(cfg) == ["North 40", "Creek Bottom"]
+        assert cfg["North 40"].rates.crop == "corn"        # a dotted key of the row
+        assert cfg["North 40"].grid.cell_size_m == 40      # batch.toml
+        assert cfg["Creek Bottom"].grid.cell_size_m == 30  # the row's sub-table
+        assert cfg["Creek Bottom"].rates.crop == "soybean"  # the table's own default section
+        assert cfg["Creek Bottom"].field.name == "Creek Bottom"
+        assert [f.samples.name for f in plan.fields] == ["samples.csv", "samples.csv"]
+    finally:
+        plan.close()
+
+
+def test_a_dask_client_passed_in_runs_the_batch_and_is_left_open(tmp_path, dask_cluster):
+    import distributed
+
+    fields = tmp_path / "fields"
+    make_field(fields, "Alpha")
+    (fields / "batch.toml").write_text(BATCH_TOML, encoding="utf-8")
+    with distributed.Client(dask_cluster.scheduler_address) as client:
+        result = run_batch(fields, tmp_path / "out", scheduler=client)
+        assert client.status == "running"
+        assert client.submit(sum, [1, 2]).result() == 3
+    assert result.exit_code == 0
+    assert [r["status"] for r in result.records] == ["done"]
+    assert_complete(tmp_path / "out" / "Alpha")

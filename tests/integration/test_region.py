@@ -259,3 +259,18 @@ def test_cli_region_refuses_drift_with_exit_code_2(demo_inputs, tmp_path):
     assert result.exit_code == 2
     assert "kriging.drift" in result.output
     assert not (tmp_path / "o").exists()
+
+
+def test_a_dask_client_passed_in_is_used_and_left_open(tiled_demo, demo_inputs, global_config,
+                                                       tmp_path, dask_cluster):
+    import distributed
+
+    _, out = tiled_demo
+    with distributed.Client(dask_cluster.scheduler_address) as client:
+        remote = _quiet_region(demo_inputs["samples"], demo_inputs["boundary"], tmp_path / "out",
+                               global_config, tile_cells=64, scheduler=client)
+        assert client.status == "running"  # pmap closes only the clients it opened
+        assert client.submit(sum, [1, 2]).result() == 3
+    assert remote.summary["run"]["backend"] == "Dask"
+    assert ((out / "rasters" / "stp.tif").read_bytes()
+            == (tmp_path / "out" / "rasters" / "stp.tif").read_bytes())
