@@ -58,7 +58,7 @@ GDAL_CACHE_MB: int = 256
 
 @dataclass(frozen=True)
 class RegionProgress:
-    """Where a region run is: tiles written of the tiles planned, and the time so far (s)."""
+    """Where a region run is: tiles written of the tiles planned, seconds since the first tile."""
 
     written: int
     planned: int
@@ -401,9 +401,11 @@ def run_region(
             writers = _open_writers(transaction.staging / "rasters", model, names, calibration)
             backend = _backend(model, workers, scheduler)
             pending = max_pending or max(2, 2 * backend.slots)
+            kind = backend.kind
             stats = {name: LayerStats() for name in names}
             notes: dict[str, None] = {}
             inside = 0
+            t_start = time.perf_counter()
             for done, out in enumerate(_in_order(backend, tiles, pending), start=1):
                 for name, array in out.layers.items():
                     writers[name].write(array, out.tile.row0, out.tile.col0)
@@ -411,7 +413,7 @@ def run_region(
                 inside += out.n_inside
                 notes.update(dict.fromkeys(out.notes))
                 if progress is not None:
-                    progress(RegionProgress(done, len(tiles), time.perf_counter() - t0))
+                    progress(RegionProgress(done, len(tiles), time.perf_counter() - t_start))
                 log.debug("tile %d (%d/%d) written", out.tile.index, done, len(tiles))
             backend.close()
             backend = None
@@ -442,7 +444,7 @@ def run_region(
     try:
         summary = _region_summary(config, field_data, grid, tiles, tile_cells, inside, fits,
                                   calibration, stats, list(notes), recorded_warnings)
-        summary["run"] = {"backend": backend_kind(workers, scheduler), "fit_s": t_fit,
+        summary["run"] = {"backend": kind, "fit_s": t_fit,
                           "tiles_s": t_tiles, "overviews_s": t_write}
         (transaction.staging / "summary.json").write_text(
             json.dumps(_json_ready(summary), indent=2) + "\n", encoding="utf-8")
@@ -460,14 +462,6 @@ def run_region(
         raise
     return RegionResult(out_dir, grid, len(tiles), inside, fits, summary, outputs,
                         recorded_warnings)
-
-
-def backend_kind(workers: int | None, scheduler: Any) -> str:
-    """How the tiles ran, in words."""
-    if scheduler is not None:
-        return "Dask"
-    workers = workers or os.cpu_count() or 1
-    return "this process" if workers == 1 else f"{workers} local processes"
 
 
 def _region_summary(config: FieldConfig, field_data: Any, grid: RegionGrid, tiles: list[Tile],

@@ -110,3 +110,11 @@ def test_windowed_class_geotiff_has_labels_and_colours(tmp_path):
         assert src.nodata == 0 and src.tags()["CLASS_3"] == "high"
         assert src.colormap(1)[3] == (0, 0, 255, 255)
         assert src.overviews(1) == []  # under one block: none needed
+
+
+def test_progress_estimates_the_time_left_at_the_pace_so_far():
+    from pmap.region import RegionProgress
+
+    assert RegionProgress(0, 10, 5.0).eta_s is None
+    assert RegionProgress(4, 10, 20.0).eta_s == pytest.approx(30.0)
+    assert RegionProgress(10, 10, 50.0).eta_s == 0.0
