@@ -17,14 +17,14 @@ import warnings
 from pathlib import Path
 
 from pmap.config import FieldConfig
-from pmap.errors import ConfigError, InputError, OutputExistsError, OutputError, PmapWarning
+from pmap.errors import ConfigError, InputError, OutputError, OutputExistsError, PmapWarning
 from pmap.io.samples import read_samples
 from pmap.soil.calibration import Calibration, calibrate_partition
 
 __all__ = ["calibrate_samples", "write_calibration"]
 
 
-def calibrate_samples(samples_path: str | Path, config: FieldConfig = FieldConfig(), *,
+def calibrate_samples(samples_path: str | Path, config: FieldConfig = FieldConfig(), *,  # noqa: B008 - frozen
                       crs: str | None = None) -> tuple[Calibration, str | None]:
     """Calibrate ``config.soil`` to the paired lab values of a samples file.
 

@@ -27,8 +27,8 @@ from pmap.prescribe.clustering import ClusterParams
 from pmap.prescribe.rates import RateRule
 from pmap.prescribe.zones import ZoneParams
 from pmap.soil.availability import PartitionParams
-from pmap.soil.conversions import SoilTestEquivalent
 from pmap.soil.calibration import CalibrationSettings
+from pmap.soil.conversions import SoilTestEquivalent
 from pmap.soil.environment import PsrParams
 from pmap.soil.fixation import FixationParams
 from pmap.soil.lime import LimeParams

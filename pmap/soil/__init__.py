@@ -20,6 +20,7 @@ from pmap.soil.conversions import (
     SOIL_TEST_METHODS,
     SoilTestEquivalent,
 )
+from pmap.soil.environment import PsrParams, phosphorus_saturation_ratio
 from pmap.soil.fixation import (
     MECHANISM_LABELS,
     RISK_CLASS_LABELS,
@@ -27,7 +28,6 @@ from pmap.soil.fixation import (
     FixationRisk,
     fixation_risk,
 )
-from pmap.soil.environment import PsrParams, phosphorus_saturation_ratio
 from pmap.soil.lime import LimeParams, lime_requirement_t_acre, lime_requirement_t_ha
 from pmap.soil.model import SoilInputs, SoilModel, soil_model
 

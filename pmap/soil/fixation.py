@@ -33,8 +33,8 @@ from pmap._checks import check_choice, check_number
 from pmap.errors import ConfigError
 from pmap.soil.availability import (
     PartitionParams,
-    _optional,
     _arms,
+    _optional,
     arm_strengths,
     availability_curve,
     calcium_supply,

@@ -99,8 +99,8 @@ def soil_model(
     ph: np.ndarray,
     total_p: np.ndarray | None,
     inputs: SoilInputs = SoilInputs(),
-    partition: PartitionParams = PartitionParams(),
-    fixation: FixationParams = FixationParams(),
+    partition: PartitionParams = PartitionParams(),  # noqa: B008 - frozen, immutable default
+    fixation: FixationParams = FixationParams(),  # noqa: B008 - frozen, immutable default
 ) -> SoilModel:
     """Pools of total P, the labile share of fresh P and the fixation risk, cell by cell.
 
