@@ -232,11 +232,11 @@ def _backend(model: RegionModel, workers: int | None, scheduler: Any) -> Any:
 def _in_order(backend: Any, tiles: list[Tile], max_pending: int) -> Iterator[TileOutput]:
     """Computed tiles in planned order, at most ``max_pending`` submitted and not yet taken."""
     queue: collections.deque = collections.deque()
-    todo = iter(tiles)
+    waiting = iter(tiles)
     try:
         while True:
             while len(queue) < max_pending:
-                tile = next(todo, None)
+                tile = next(waiting, None)
                 if tile is None:
                     break
                 queue.append(backend.submit(tile))
