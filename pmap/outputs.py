@@ -38,7 +38,7 @@ if TYPE_CHECKING:
     from pmap.results import FieldInputs, FieldResult
 
 __all__ = ["LAYERS", "LayerInfo", "check_output_dir", "write_outputs",
-           "inputs_recorded_as", "output_timestamp"]
+           "inputs_recorded_as", "output_timestamp", "json_safe"]
 
 
 def check_output_dir(out_dir: Path, overwrite: bool, inputs: list[Path]) -> OutputTransaction:
@@ -66,17 +66,20 @@ def check_output_dir(out_dir: Path, overwrite: bool, inputs: list[Path]) -> Outp
     return open_transaction(out_dir, overwrite, inputs)
 
 
-def _json_safe(obj: Any) -> Any:
+def json_safe(obj: Any) -> Any:
+    """``obj`` with numpy scalars and arrays, tuples and paths made plain JSON values (NaN -> None)."""
     if isinstance(obj, dict):
-        return {str(k): _json_safe(v) for k, v in obj.items()}
+        return {str(k): json_safe(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_json_safe(v) for v in obj]
+        return [json_safe(v) for v in obj]
     if isinstance(obj, np.ndarray):
-        return _json_safe(obj.tolist())
+        return json_safe(obj.tolist())
     if isinstance(obj, (float, np.floating)):
         return float(obj) if np.isfinite(obj) else None
     if isinstance(obj, np.integer):
         return int(obj)
+    if isinstance(obj, np.bool_):
+        return bool(obj)
     if isinstance(obj, Path):
         return str(obj)
     return obj
@@ -154,7 +157,7 @@ def _provenance(result: FieldResult, name: str) -> dict[str, str]:
     interp = result.interpolations.get(base)
     if interp is not None:
         tags["METHOD"] = ("lognormal ordinary kriging" if interp.log else "ordinary kriging")
-        tags["VARIOGRAM"] = json.dumps(_json_safe(interp.model.as_dict()))
+        tags["VARIOGRAM"] = json.dumps(json_safe(interp.model.as_dict()))
         tags["N_SAMPLES"] = str(interp.cv.n)
     elif name in MODEL_LAYERS:
         tags["METHOD"] = (f"pmap soil model v2 on kriged inputs, fixation model "
@@ -162,7 +165,7 @@ def _provenance(result: FieldResult, name: str) -> dict[str, str]:
     elif name in PRESCRIPTION_LAYERS:
         tags["METHOD"] = f"pmap rates v2; soil-test P: {result.stp_source['description']}"
         tags["BASIS"] = result.prescription["basis"]
-        tags["INTERPRETATION"] = json.dumps(_json_safe(result.interpretation.as_dict()))
+        tags["INTERPRETATION"] = json.dumps(json_safe(result.interpretation.as_dict()))
     return tags
 
 
@@ -282,12 +285,12 @@ def write_outputs(
         outputs["manifest.json"] = ("pmap version, configuration, warnings, and the SHA-256 "
                                     "and size of every input read and every file written")
         summary = _summary(result, inputs, sources, copied, outputs)
-        recorded = _json_safe(summary)
+        recorded = json_safe(summary)
         (tmp / "summary.json").write_text(json.dumps(recorded, indent=2) + "\n",
                                           encoding="utf-8")
         if REPORT_NAME in outputs:
             write_field_report(tmp, recorded)
-        write_manifest(tmp, _json_safe({
+        write_manifest(tmp, json_safe({
             "pmap_version": __version__,
             "field": result.config.field.name,
             "format_timestamp_utc": stamp.isoformat(),
@@ -385,7 +388,7 @@ def _summary(result, inputs, sources, copied, outputs):
             "cells_inside": grid.n_inside, "area_ha": round(grid.n_inside * grid.cell_area_ha, 3),
         },
         "properties": props,
-        "soil_model": {**available, **_json_safe(result.soil)},
+        "soil_model": {**available, **json_safe(result.soil)},
         "fixation": fixation,
         "soil_test_p_driving_rates": result.stp_source,
         "rate_rule": dataclasses.asdict(result.rule),

@@ -167,15 +167,14 @@ def compute_tile(model: RegionModel, tile: Tile) -> TileOutput:
         return TileOutput(tile, {}, {})
     targets = spec.inside_coords()
     chunk = model.config.kriging.chunk_size
-    estimates: dict[str, np.ndarray] = {}
     cells: dict[str, np.ndarray] = {}
     for name, fit in model.fits.items():
         result = krige_at(fit, targets, limits=model.limits.get(name), chunk_size=chunk,
                           system=model.system(name))
-        estimates[name] = result.estimate
         cells[name] = result.estimate
         cells[f"{name}_variance"] = result.variance
     del targets
+    estimates = {name: cells[name] for name in model.fits}
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always", PmapWarning)
         inputs = soil_inputs_on_grid(estimates, spec, model.config)

@@ -294,22 +294,6 @@ def _open_writers(directory: Path, model: RegionModel, names: tuple[str, ...],
     return writers
 
 
-def _json_ready(obj: Any) -> Any:
-    if isinstance(obj, dict):
-        return {str(k): _json_ready(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_json_ready(v) for v in obj]
-    if isinstance(obj, (np.floating, float)):
-        return float(obj) if np.isfinite(obj) else None
-    if isinstance(obj, np.integer):
-        return int(obj)
-    if isinstance(obj, np.bool_):
-        return bool(obj)
-    if isinstance(obj, np.ndarray):
-        return _json_ready(obj.tolist())
-    return obj
-
-
 def run_region(
     samples: str | Path,
     boundary: str | Path,
@@ -364,7 +348,7 @@ def run_region(
     import rasterio
 
     from pmap.io.manifest import file_record, write_manifest
-    from pmap.outputs import check_output_dir
+    from pmap.outputs import check_output_dir, json_safe
     from pmap.pipeline import PROPERTY_LIMITS, ingest_field
 
     if not isinstance(config, FieldConfig):
@@ -447,9 +431,9 @@ def run_region(
         summary["run"] = {"backend": kind, "fit_s": t_fit,
                           "tiles_s": t_tiles, "overviews_s": t_write}
         (transaction.staging / "summary.json").write_text(
-            json.dumps(_json_ready(summary), indent=2) + "\n", encoding="utf-8")
+            json.dumps(json_safe(summary), indent=2) + "\n", encoding="utf-8")
         outputs["summary.json"] = "the region's figures, fits, calibration and cautions"
-        write_manifest(transaction.staging, _json_ready({
+        write_manifest(transaction.staging, json_safe({
             "pmap_version": __version__, "kind": "region", "field": config.field.name,
             "config": config.as_dict(),
             "inputs": {kind: file_record(path) for kind, path in

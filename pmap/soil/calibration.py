@@ -316,7 +316,7 @@ class Calibration:
             "bounds": {k: [lo, hi] for k, (lo, hi) in self.bounds.items()},
             "notes": list(self.notes),
         })
-        return _json_safe(out)
+        return json_safe(out)
 
     def to_toml(
         self,
@@ -881,11 +881,11 @@ def _round_sig(value: float, digits: int = _TOML_DIGITS) -> float:
     return float(f"{value:.{digits}g}")
 
 
-def _json_safe(obj: Any) -> Any:
+def json_safe(obj: Any) -> Any:
     if isinstance(obj, dict):
-        return {str(k): _json_safe(v) for k, v in obj.items()}
+        return {str(k): json_safe(v) for k, v in obj.items()}
     if isinstance(obj, (list, tuple)):
-        return [_json_safe(v) for v in obj]
+        return [json_safe(v) for v in obj]
     if isinstance(obj, (np.floating, float)):
         return float(obj) if math.isfinite(obj) else None
     if isinstance(obj, np.integer):

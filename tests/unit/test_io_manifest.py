@@ -68,3 +68,19 @@ def test_read_manifest_missing_or_not_a_manifest(tmp_path):
     (tmp_path / MANIFEST_NAME).write_text(json.dumps([1, 2]))
     with pytest.raises(OutputError, match="not a pmap manifest"):
         read_manifest(tmp_path)
+
+
+def test_json_safe_makes_numpy_values_plain_and_nan_null():
+    # Source: RFC 8259 (JSON has no NaN or Infinity; pmap writes them as null)
+    import json
+    from pathlib import Path
+
+    import numpy as np
+
+    from pmap.outputs import json_safe
+
+    got = json_safe({"a": np.float32(1.5), "b": np.nan, "c": (np.int64(3), np.bool_(True)),
+                     "d": np.array([1.0, np.inf]), "e": Path("x/y.tif"), 7: "k"})
+    assert got == {"a": 1.5, "b": None, "c": [3, True], "d": [1.0, None], "e": "x/y.tif",
+                   "7": "k"}
+    json.dumps(got, allow_nan=False)
